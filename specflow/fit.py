@@ -114,9 +114,9 @@ class SampleCache:
 
     def filter_mask(self, filters: tuple[str, ...]) -> np.ndarray:
         if filters not in self._filters:
-            from . import expr
-
             mask = np.ones(len(self.df), dtype=bool)
+            if filters:
+                from . import expr
             for text in filters:
                 try:
                     mask &= np.asarray(expr.parse(text).evaluate(self.df), dtype=bool)
