@@ -25,8 +25,9 @@ Numbers are finite or missing: any operation whose result is infinite or NaN (``
 and functions. A comparison or ``in`` test involving a missing value is *false*, so a filter drops
 such rows unless it says ``is_missing(x)``. ``and``/``or``/``not`` follow three-valued logic for
 true/false columns that have missing entries; a true/false result that is still missing at the end
-counts as false. ``round`` rounds halves to even; ``standardize`` uses the mean and the sample
-standard deviation (ddof = 1) of the non-missing rows it is given.
+counts as false. ``round`` rounds halves to even; ``clip(x, lo, hi)`` is missing where ``lo > hi``;
+``standardize`` uses the mean and the sample standard deviation (ddof = 1) of the non-missing rows
+it is given, and refuses a column without variation.
 """
 
 from __future__ import annotations
@@ -559,7 +560,7 @@ def _canon(node) -> str:
     if isinstance(node, Col):
         return _fmt_col(node.name)
     if isinstance(node, Neg):
-        return "-" + _wrap(node.arg, 8)
+        return "-" + _wrap(node.arg, 7)  # '--x' needs no parentheses (which would add nesting)
     if isinstance(node, Not):
         return "not " + _wrap(node.arg, 3)
     if isinstance(node, Pow):
@@ -723,7 +724,8 @@ class _Evaluator:
             return _Val(kind, np.where(miss, False if kind == BOOL else "", data).astype(x.data.dtype), miss)
         if name in ("lower", "upper"):
             s = self.as_kind(vals[0], STR)
-            return _Val(STR, np.array([getattr(t, name)() for t in s.data], dtype=object), s.miss)
+            change = str.lower if name == "lower" else str.upper
+            return _Val(STR, np.array([change(t) for t in s.data], dtype=object), s.miss)
         args = self.nums(vals)
         if name in _UNARY_NUMPY:
             return _num(_UNARY_NUMPY[name](args[0]))

@@ -389,6 +389,11 @@ def test_size_limits():
         parse("not " * 80 + "x")
     with pytest.raises(ExprError, match="nested more than 50"):
         parse("log(" * 60 + "x" + ")" * 60)
+    deep_tree = "a"
+    for _ in range(12):  # few parentheses, but each level nests five operators: a tree deeper than 50
+        deep_tree = f"(({deep_tree}) ^ 2 * 2 + 1 == 1 and p or p)"
+    with pytest.raises(ExprError, match="nested more than 50"):
+        parse(deep_tree)
     long_chain = " + ".join(["x"] * 400)  # a long flat chain is fine: it is not nested
     assert parse(long_chain).columns() == {"x"}
     parse("(" * 40 + "x" + ")" * 40)
