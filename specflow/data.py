@@ -19,11 +19,22 @@ from .errors import DataError, Problem, SpecError
 from .spec import Dataset, LoadedSpec
 
 
+def _shown(text: str, limit: int = 80) -> str:
+    """A user's path for a one-line message: control characters escaped, long ones shortened."""
+    s = "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
+    return s if len(s) <= limit else s[: limit - 3] + "..."
+
+
 def resolve_path(loaded: LoadedSpec, name: str) -> Path:
     """The dataset's file, resolved (symlinks too); refused outside the study folder unless allowed."""
     ds = loaded.spec.data[name]
-    p = (loaded.folder / ds.path).resolve()
-    root = loaded.folder.resolve()
+    try:
+        p = (loaded.folder / ds.path).resolve()
+        root = loaded.folder.resolve()
+    except (OSError, ValueError) as exc:  # a NUL byte, a name too long, a symlink loop
+        reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
+        raise SpecError([loaded.problem(("data", name, "path"),
+                         f"path '{_shown(ds.path)}' is not a usable file name ({reason})")]) from None
     if not ds.allow_outside and not p.is_relative_to(root):
         raise SpecError([loaded.problem(("data", name, "path"),
                          f"path '{ds.path}' resolves outside the study folder {root} "
@@ -64,16 +75,24 @@ def read_dataset(loaded: LoadedSpec, name: str, check_sha: bool = True) -> tuple
     """Read a dataset's file (not yet derived or filtered) and its SHA-256."""
     ds = loaded.spec.data[name]
     path = resolve_path(loaded, name)
-    if not path.exists():
-        raise SpecError([loaded.problem(("data", name, "path"), f"data file '{ds.path}' not found")])
-    digest = sha256_file(path)
+    where = ("data", name, "path")
+    try:
+        if not path.exists():
+            raise SpecError([loaded.problem(where, f"data file '{_shown(ds.path)}' not found")])
+        if not path.is_file():
+            raise SpecError([loaded.problem(where, f"'{_shown(ds.path)}' is a folder, not a data file")])
+        digest = sha256_file(path)
+    except OSError as exc:
+        raise SpecError([loaded.problem(where, f"cannot read data file '{_shown(ds.path)}': "
+                                               f"{exc.strerror or exc}")]) from None
     if check_sha and ds.sha256 and digest.lower() != ds.sha256.lower():
         raise SpecError([loaded.problem(("data", name, "sha256"),
                          f"checksum mismatch for '{ds.path}': the file's SHA-256 is {digest}")])
     try:
         df = read_table(path, ds.file_format())
     except DataError as exc:
-        raise SpecError([loaded.problem(("data", name, "path"), str(exc))]) from None
+        msg = str(exc).removeprefix(f"{path}: ")
+        raise SpecError([loaded.problem(where, f"data file '{_shown(ds.path)}': {msg}")]) from None
     df.columns = [str(c) for c in df.columns]
     return df, digest
 
@@ -140,26 +159,78 @@ def write_parquet_atomic(df: pd.DataFrame, path: Path) -> None:
     os.replace(tmp, path)
 
 
+def _patches_of(loaded: LoadedSpec, sp) -> list[tuple[tuple, object]]:
+    """The patches that made a specification, in the order they were applied, with key paths."""
+    s = loaded.spec
+    if sp.extra_name is not None:
+        return [(("extra", sp.extra_name), s.extra[sp.extra_name])]
+    out = []
+    for aname, axis in s.axes.items():
+        label = sp.labels.get(aname)
+        if label is not None and label != axis.baseline and label in axis.variants:
+            out.append((("axes", aname, "variants", label), axis.variants[label]))
+    return out
+
+
+def _role_key(loaded: LoadedSpec, sp, role: str, column: str | None = None) -> tuple:
+    """The key path that gave a specification its value of a role (the last patch setting it)."""
+    keys = (role, f"add_{role}") if role in ("instruments", "controls", "absorb") else (role,)
+    for path, patch in reversed(_patches_of(loaded, sp)):
+        ch = patch.changes()
+        for key in keys:
+            v = ch.get(key)
+            if v is None:
+                continue
+            if column is None or v == column or (isinstance(v, list) and column in v):
+                return path + (key,)
+    return ("model", role)
+
+
+def _filter_source(loaded: LoadedSpec, sp, canonical: str) -> tuple[tuple, str]:
+    """Key path and original text of one of a specification's (canonical) filters."""
+    from . import expr
+
+    candidates = [(path + (key,), getattr(patch, key)) for path, patch in _patches_of(loaded, sp)
+                  for key in ("filter", "add_filter")]
+    candidates.append((("model", "filter"), loaded.spec.model.filter))
+    for path, text in candidates:
+        if text and expr.parse(text).canonical() == canonical:
+            return path, text
+    return ("model", "filter"), canonical
+
+
 def validate_against_data(loaded: LoadedSpec, specs: list, frames: dict[str, pd.DataFrame]) -> list[Problem]:
     """Check every specification against its prepared data: columns, roles, order condition, rows.
 
-    Returns the problems (each naming the specification's labels and the column).
+    Each problem points at the key that caused it (the baseline's role or the variant that set
+    it) and is reported once, however many specifications share it; problems that arise from a
+    combination of variants name the first specification showing them.
     """
+    import difflib
+
     from . import expr
 
     problems: list[Problem] = []
     seen: set[tuple] = set()
 
-    def add(sp, msg: str, key: tuple = ()) -> None:
-        k = (msg, key)
-        if k in seen:
+    def add(key: tuple, msg: str, sp=None) -> None:
+        if (key, msg) in seen:
             return
-        seen.add(k)
-        path = key or (("extra", sp.extra_name) if sp.extra_name else ("model",))
-        where = f"specification {sp.id} ({sp.label_text()})"
-        problems.append(loaded.problem(path, f"{where}: {msg}"))
+        seen.add((key, msg))
+        where = f"specification {sp.id} ({sp.label_text()}): " if sp is not None else ""
+        problems.append(loaded.problem(key, where + msg))
+
+    empty = set()
+    for name in sorted({sp.dataset for sp in specs}):
+        if len(frames[name]) == 0:
+            empty.add(name)
+            ds = loaded.spec.data[name]
+            key = ("data", name, "filter") if ds.filter else ("data", name, "path")
+            add(key, f"dataset '{name}' has no rows" + (" after its filter" if ds.filter else ""))
 
     for sp in specs:
+        if sp.dataset in empty:
+            continue
         df = frames[sp.dataset]
         cols = set(df.columns)
         roles = {
@@ -167,44 +238,58 @@ def validate_against_data(loaded: LoadedSpec, specs: list, frames: dict[str, pd.
             "instruments": list(sp.instruments), "controls": list(sp.controls),
             "absorb": list(sp.absorb), "cluster": list(sp.cluster),
             "weights": [sp.weights] if sp.weights else [],
+            "hac_order": [sp.hac_order] if sp.hac_order else [],
         }
         for role, names in roles.items():
             for c in names:
                 if c not in cols:
-                    import difflib
-
                     close = difflib.get_close_matches(c, sorted(cols), n=1)
                     hint = f"; did you mean '{close[0]}'?" if close else ""
-                    add(sp, f"column '{c}' ({role}) is not in dataset '{sp.dataset}'{hint}")
+                    add(_role_key(loaded, sp, role, c),
+                        f"column '{c}' ({role}) is not in dataset '{sp.dataset}'{hint}")
         owner: dict[str, str] = {}
         for role in ("outcome", "endogenous", "instruments", "controls", "weights"):
             for c in roles[role]:
                 if c in owner and owner[c] != role:
-                    add(sp, f"column '{c}' is both {owner[c]} and {role}")
+                    add(_role_key(loaded, sp, role, c), f"column '{c}' is both {owner[c]} and {role}", sp)
                 owner.setdefault(c, role)
         for c in roles["absorb"]:
             if c in owner and owner[c] in ("outcome", "endogenous", "instruments", "controls"):
-                add(sp, f"column '{c}' is both {owner[c]} and absorbed")
+                add(_role_key(loaded, sp, "absorb", c), f"column '{c}' is both {owner[c]} and absorbed", sp)
         if len(sp.instruments) < len(sp.endogenous):
-            add(sp, f"order condition fails: {len(sp.instruments)} instrument(s) for "
-                    f"{len(sp.endogenous)} endogenous regressor(s)")
+            key = _role_key(loaded, sp, "instruments")
+            if key[0] == "model":
+                key = _role_key(loaded, sp, "endogenous")
+            add(key, f"order condition fails: {len(sp.instruments)} instrument(s) for "
+                     f"{len(sp.endogenous)} endogenous regressor(s)", sp)
         if sp.covariance == "cluster" and not sp.cluster:
-            add(sp, "covariance 'cluster' but no cluster variable")
+            add(_role_key(loaded, sp, "covariance"), "covariance 'cluster' but no cluster variable", sp)
+        combined = np.ones(len(df), dtype=bool)
+        usable = True
         for text in sp.filters:
+            key, shown = _filter_source(loaded, sp, text)
             e = expr.parse(text)
             missing = [c for c in e.columns() if c not in cols]
             if missing:
-                add(sp, f"filter \"{text}\" uses column '{missing[0]}' not in dataset '{sp.dataset}'")
+                close = difflib.get_close_matches(missing[0], sorted(cols), n=1)
+                hint = f"; did you mean '{close[0]}'?" if close else ""
+                add(key, f"filter \"{shown}\" uses column '{missing[0]}' not in dataset "
+                         f"'{sp.dataset}'{hint}")
+                usable = False
                 continue
             try:
                 mask = np.asarray(e.evaluate(df), dtype=bool)
             except expr.ExprError as exc:
-                add(sp, str(exc))
+                add(key, str(exc))
+                usable = False
                 continue
             if not mask.any():
-                add(sp, f"filter \"{text}\" leaves no rows")
-        if len(df) == 0:
-            add(sp, f"dataset '{sp.dataset}' has no rows after its filter", ("data", sp.dataset, "filter"))
+                add(key, f"filter \"{shown}\" leaves no rows of dataset '{sp.dataset}'")
+                usable = False
+            combined &= mask
+        if usable and len(sp.filters) > 1 and not combined.any():
+            add(_filter_source(loaded, sp, sp.filters[-1])[0],
+                "the sample filters together leave no rows", sp)
     return problems
 
 

@@ -28,7 +28,9 @@ NAME_RE = r"^[A-Za-z_][A-Za-z0-9_]*$"
 
 
 class Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", str_strip_whitespace=True, validate_default=True)
+    # strict: TOML values are typed, so "yes" is not a boolean nor "3" a number; no inf/nan
+    model_config = ConfigDict(extra="forbid", str_strip_whitespace=True, validate_default=True,
+                              strict=True, allow_inf_nan=False)
 
 
 def _as_list(v: Any) -> Any:
@@ -254,11 +256,13 @@ class Spec(Strict):
 class LoadedSpec:
     """A validated spec plus where it came from (for paths and error messages)."""
 
-    def __init__(self, spec: Spec, path: Path, text: str, lines: dict[tuple, int]):
+    def __init__(self, spec: Spec, path: Path, text: str, lines: dict[tuple, int],
+                 shown: str | None = None):
         self.spec = spec
         self.path = path
         self.text = text
         self._lines = lines
+        self.shown = shown or str(path)  # the path as the user gave it, for messages
 
     @property
     def folder(self) -> Path:
@@ -272,7 +276,7 @@ class LoadedSpec:
         return _line_for(self._lines, path)
 
     def problem(self, path: tuple, message: str) -> Problem:
-        return Problem(message, _dotted(path), self.line_of(path), str(self.path))
+        return Problem(message, _dotted(path), self.line_of(path), self.shown)
 
 
 _HEADER = re.compile(r"^\s*(\[\[?)\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
@@ -385,6 +389,24 @@ def _suggest(word: str, choices: list[str]) -> str:
     return f"; did you mean '{close[0]}'?" if close else ""
 
 
+_PATTERN_WORDS = {
+    NAME_RE: "must be a plain identifier (letters, digits and _, not starting with a digit)",
+    r"^[0-9a-fA-F]{64}$": "is not a SHA-256 (64 hexadecimal digits)",
+}
+
+
+def _toml_type(v: Any) -> str:
+    if isinstance(v, bool):
+        return f"true/false ({str(v).lower()})"
+    if isinstance(v, (int, float)):
+        return f"a number ({v!r})"
+    if isinstance(v, str):
+        return f"a string ({v!r})"
+    if isinstance(v, list):
+        return "a list"
+    return type(v).__name__
+
+
 def _pydantic_problems(err: ValidationError, lines: dict[tuple, int], file: str) -> list[Problem]:
     problems = []
     for e in err.errors():
@@ -404,6 +426,14 @@ def _pydantic_problems(err: ValidationError, lines: dict[tuple, int], file: str)
         elif typ == "literal_error":
             expected = e.get("ctx", {}).get("expected", "")
             msg = f"{e['input']!r} is not allowed; expected one of {expected}"
+        elif typ == "value_error":  # our own validators: their message, without pydantic's prefix
+            msg = str(e.get("ctx", {}).get("error", e["msg"]))
+        elif typ == "string_pattern_mismatch":
+            pattern = e.get("ctx", {}).get("pattern", "")
+            what = _PATTERN_WORDS.get(pattern, f"must match the pattern {pattern}")
+            msg = f"{e['input']!r} {what}"
+        elif typ in ("model_type", "model_attributes_type", "dict_type"):
+            msg = f"expected a table, got {_toml_type(e.get('input'))}"
         else:
             msg = e["msg"]
             if "input" in e and not isinstance(e["input"], (dict, list)):
@@ -445,7 +475,10 @@ def load_spec(path: str | Path) -> LoadedSpec:
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
-        raise SpecError([Problem(f"spec file is not UTF-8 (byte {exc.start})", "", None, file)]) from None
+        line = raw[: exc.start].count(b"\n") + 1
+        column = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise SpecError([Problem(f"spec file is not UTF-8 (byte 0x{raw[exc.start]:02x} at column "
+                                 f"{column})", "", line, file)]) from None
     return load_spec_text(text, path)
 
 
@@ -459,7 +492,7 @@ def load_spec_text(text: str, path: Path) -> LoadedSpec:
         raise SpecError(_pydantic_problems(err, lines, file)) from None
     except RecursionError:
         raise SpecError([Problem("spec nesting is too deep", "", None, file)]) from None
-    loaded = LoadedSpec(spec, path.resolve() if path.exists() else path, text, lines)
+    loaded = LoadedSpec(spec, path.resolve() if path.exists() else path, text, lines, file)
     problems = semantic_problems(loaded)
     if problems:
         raise SpecError(problems)
@@ -491,6 +524,62 @@ def _exprs(loaded: LoadedSpec) -> list[tuple[tuple, str, bool]]:
     return out
 
 
+def _output_problems(loaded: LoadedSpec) -> list[Problem]:
+    """The output folder may be anywhere, but must not hold the study's own inputs.
+
+    Everything specflow writes goes below it (file names are identifiers and ids), and old runs
+    are pruned inside it, so it must not be the spec's folder, one of its parents, or a folder
+    holding a dataset.
+    """
+    out_text = loaded.spec.study.output
+    path = ("study", "output")
+    try:
+        out = (loaded.folder / out_text).resolve()
+        root = loaded.folder.resolve()
+    except (OSError, ValueError) as exc:
+        return [loaded.problem(path, f"output folder '{out_text}' is not a usable path ({exc})")]
+    if root.is_relative_to(out):
+        return [loaded.problem(path, f"output folder '{out_text}' would contain the spec file; "
+                               "use a subfolder such as 'results'")]
+    for name, ds in loaded.spec.data.items():
+        try:
+            inside = (loaded.folder / ds.path).resolve().is_relative_to(out)
+        except (OSError, ValueError):
+            continue  # reported with the dataset
+        if inside:
+            return [loaded.problem(path, f"output folder '{out_text}' contains dataset '{name}' "
+                                   f"('{ds.path}'); keep outputs and data apart")]
+    return []
+
+
+def _noop_patch(m: Model, patch: Patch) -> bool:
+    """True if applying the patch to the baseline model changes none of its values."""
+    ch = patch.changes()
+    est = ch.get("estimator", m.estimator)
+    cov = ch.get("covariance", m.covariance)
+    for key, v in ch.items():
+        if key in ("add_instruments", "add_controls", "add_absorb"):
+            if not set(v) <= set(getattr(m, key[4:])):
+                return False
+        elif key in ("drop_instruments", "drop_controls", "drop_absorb"):
+            if set(v) & set(getattr(m, key[5:])):
+                return False
+        elif key == "no_weights":
+            if v and m.weights is not None:
+                return False
+        elif key == "add_filter":
+            return False
+        elif key == "fuller_alpha":
+            if est == "fuller" and v != m.fuller_alpha:
+                return False
+        elif key in ("hac_lags", "hac_order"):
+            if cov == "hac" and v != getattr(m, key):
+                return False
+        elif v != getattr(m, key):
+            return False
+    return bool(ch)
+
+
 def semantic_problems(loaded: LoadedSpec) -> list[Problem]:
     """Checks that need the whole spec but not the data."""
     from . import expr as expr_mod
@@ -504,6 +593,10 @@ def semantic_problems(loaded: LoadedSpec) -> list[Problem]:
         if name is not None and name not in s.data:
             problems.append(P(path, f"unknown dataset '{name}'" + _suggest(name, datasets)))
 
+    for name in datasets:
+        if not re.match(NAME_RE, name):
+            problems.append(P(("data", name), f"dataset name '{name}' must be a plain identifier"))
+    problems.extend(_output_problems(loaded))
     if s.model.data is None:
         problems.append(P(("model",), f"key 'data' is required with several datasets ({', '.join(datasets)})"))
     check_data_ref(("model", "data"), s.model.data)
@@ -538,11 +631,17 @@ def semantic_problems(loaded: LoadedSpec) -> list[Problem]:
             labels.add(label)
             if not patch.changes():
                 problems.append(P(ppath, f"variant '{label}' of axis '{aname}' changes nothing"))
+            elif _noop_patch(m, patch):
+                problems.append(P(ppath, f"variant '{label}' of axis '{aname}' only repeats the "
+                                  f"baseline's values ({', '.join(patch.changes())})"))
             check_data_ref(ppath + ("data",), patch.data)
         labels_by_axis[aname] = labels
     for name, patch in s.extra.items():
         if not patch.changes():
             problems.append(P(("extra", name), f"one-off specification '{name}' changes nothing"))
+        elif _noop_patch(m, patch):
+            problems.append(P(("extra", name), f"one-off specification '{name}' only repeats the "
+                              f"baseline's values ({', '.join(patch.changes())})"))
         check_data_ref(("extra", name, "data"), patch.data)
 
     for rule_kind in ("exclude", "only"):
@@ -566,15 +665,18 @@ def semantic_problems(loaded: LoadedSpec) -> list[Problem]:
         names.add(t.name)
         if t.across and t.across not in labels_by_axis:
             problems.append(P(path + ("across",), f"unknown axis '{t.across}'" + _suggest(t.across, list(labels_by_axis))))
-        for sel in t.columns + [t.where]:
+        selections = [(("columns", j), c) for j, c in enumerate(t.columns)] + [(("where",), t.where)]
+        for key, sel in selections:
             for aname, label in sel.items():
                 if aname == "extra":
                     if label not in s.extra:
-                        problems.append(P(path, f"unknown one-off specification '{label}'"))
+                        problems.append(P(path + key, f"unknown one-off specification '{label}'"
+                                          + _suggest(label, list(s.extra))))
                 elif aname not in labels_by_axis:
-                    problems.append(P(path, f"unknown axis '{aname}'" + _suggest(aname, list(labels_by_axis))))
+                    problems.append(P(path + key, f"unknown axis '{aname}'" + _suggest(aname, list(labels_by_axis))))
                 elif label not in labels_by_axis[aname]:
-                    problems.append(P(path, f"axis '{aname}' has no variant '{label}'"))
+                    problems.append(P(path + key, f"axis '{aname}' has no variant '{label}'"
+                                      + _suggest(label, sorted(labels_by_axis[aname]))))
     return problems
 
 
