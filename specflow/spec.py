@@ -192,10 +192,15 @@ RowKind = Literal[
 
 
 class Table(Strict):
-    """[[table]]: one comparison table built from result files."""
+    """[[table]]: one comparison table built from result files.
+
+    Columns come from ``across`` (the baseline label of that axis, then its variants, other
+    axes fixed by ``where`` or at their baseline) or from ``columns`` (explicit selections; an
+    empty selection ``{}`` is the baseline). Without either the table has the baseline only.
+    """
 
     name: str = Field(pattern=NAME_RE, description="File stem of the table's outputs.")
-    title: str = ""
+    title: str = Field("", description="Caption of the table (default: the name).")
     across: str | None = Field(
         None, description="An axis whose variants form the columns (others at their baseline)."
     )
@@ -206,17 +211,28 @@ class Table(Strict):
     where: dict[str, str] = Field(
         default_factory=dict, description="Fix other axes to these labels (default: baseline)."
     )
-    panels: list[Panel] = Field(default_factory=lambda: ["iv", "ols", "first_stage"])
-    terms: list[str] = Field(default_factory=list, description="Terms to show (default: endogenous).")
+    panels: list[Panel] = Field(
+        default_factory=lambda: ["iv", "ols", "first_stage"], min_length=1,
+        description="Blocks of coefficients, in order: iv, ols, first_stage, reduced_form.",
+    )
+    terms: list[str] = Field(
+        default_factory=list,
+        description="Terms shown in the iv and ols panels (default: the endogenous regressors).",
+    )
     rows: list[RowKind] = Field(
-        default_factory=lambda: ["se", "robust_ci", "first_stage_f", "effective_f", "nobs", "clusters"]
+        default_factory=lambda: ["se", "robust_ci", "first_stage_f", "effective_f", "nobs", "clusters"],
+        description="Rows under each coefficient (se, ci, robust_ci, pvalue) and statistics "
+                    "rows below the panels, in order.",
     )
     indicators: dict[str, list[str]] = Field(
         default_factory=dict, description="Yes/no rows: label = controls or fixed effects."
     )
-    digits: int = Field(3, ge=0, le=8)
-    stars: bool = False
-    notes: str = ""
+    labels: dict[str, str] = Field(
+        default_factory=dict, description="Display names of variables: name = label."
+    )
+    digits: int = Field(3, ge=0, le=8, description="Decimals of coefficients, SEs and intervals.")
+    stars: bool = Field(False, description="Mark coefficients with significance stars.")
+    notes: str = Field("", description="Extra text for the table's notes.")
 
 
 class PackageMeta(Strict):
@@ -224,8 +240,12 @@ class PackageMeta(Strict):
 
     licence: Literal["MIT", "BSD-3-Clause", "Apache-2.0", "CC-BY-4.0", "CC0-1.0"] = "MIT"
     holder: str = Field("", description="Copyright holder named in LICENSE.txt.")
-    references: list[str] = Field(default_factory=list)
-    contact: str = ""
+    references: list[str] = Field(default_factory=list, description="References for the README.")
+    contact: str = Field("", description="Who answers a replicator's questions (name, e-mail).")
+    exhibits: dict[str, str] = Field(
+        default_factory=dict,
+        description="The paper's name of each exhibit, e.g. \"tables/instruments\" = \"Table 2\".",
+    )
 
 
 class Spec(Strict):
@@ -276,7 +296,7 @@ class LoadedSpec:
         return _line_for(self._lines, path)
 
     def problem(self, path: tuple, message: str) -> Problem:
-        return Problem(message, _dotted(path), self.line_of(path), self.shown)
+        return Problem(_one_line(message), _dotted(path), self.line_of(path), self.shown)
 
 
 _HEADER = re.compile(r"^\s*(\[\[?)\s*([^\]]+?)\s*\]\]?\s*(#.*)?$")
@@ -343,9 +363,14 @@ def _dotted(path: tuple) -> str:
         else:
             s = str(p)
             if not re.match(r"^[A-Za-z0-9_\-]+$", s):
-                s = f'"{s}"'
+                s = f'"{_one_line(s)}"'
             out += ("." if out else "") + s
     return out
+
+
+def _one_line(text: str) -> str:
+    """Text for a one-line message: control and other unprintable characters escaped."""
+    return "".join(c if c.isprintable() else c.encode("unicode_escape").decode("ascii") for c in text)
 
 
 def _classify(ann: Any) -> Any:
@@ -421,7 +446,7 @@ def _pydantic_problems(err: ValidationError, lines: dict[tuple, int], file: str)
         elif typ == "missing":
             msg = f"required key '{loc[-1]}' is missing"
             loc_line = _line_for(lines, loc[:-1])
-            problems.append(Problem(msg, _dotted(loc), loc_line, file))
+            problems.append(Problem(_one_line(msg), _dotted(loc), loc_line, file))
             continue
         elif typ == "literal_error":
             expected = e.get("ctx", {}).get("expected", "")
@@ -438,7 +463,7 @@ def _pydantic_problems(err: ValidationError, lines: dict[tuple, int], file: str)
             msg = e["msg"]
             if "input" in e and not isinstance(e["input"], (dict, list)):
                 msg += f" (got {e['input']!r})"
-        problems.append(Problem(msg, _dotted(loc), _line_for(lines, loc), file))
+        problems.append(Problem(_one_line(msg), _dotted(loc), _line_for(lines, loc), file))
     return problems
 
 
