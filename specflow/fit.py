@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy import special
 
 from . import __version__
 from .errors import FitFailure
@@ -68,6 +68,9 @@ class Sample:
     warnings: list[str]
     _cols: dict[str, np.ndarray] = field(default_factory=dict)
     _wqr: dict[tuple, tuple[np.ndarray, np.ndarray]] = field(default_factory=dict)
+    # columns the batch's specifications on this sample will use, and their _Design (shared)
+    _want: set = field(default_factory=set)
+    _design: list = field(default_factory=list)
 
     @property
     def n(self) -> int:
@@ -81,6 +84,7 @@ class SampleCache:
         self.df = df
         self._filters: dict[tuple, np.ndarray] = {}
         self._samples: dict[tuple, Sample] = {}
+        self._by_sig: dict[tuple, Sample] = {}
         self._numeric: dict[str, np.ndarray] = {}
 
     # raw columns ---------------------------------------------------------------------------
@@ -127,6 +131,17 @@ class SampleCache:
 
     # samples ------------------------------------------------------------------------------
     def sample(self, sp: Specification) -> Sample:
+        # Specifications that read the same columns under the same filters, fixed effects,
+        # weights and clusters have the same sample: found without rescanning the data.
+        sig = (sp.filters, sp.outcome, sp.outcome_transform,
+               frozenset((*sp.endogenous, *sp.instruments, *sp.controls)), sp.weights,
+               sp.hac_order, sp.absorb, sp.cluster)
+        hit = self._by_sig.get(sig)
+        if hit is None:
+            hit = self._by_sig[sig] = self._sample(sp)
+        return hit
+
+    def _sample(self, sp: Specification) -> Sample:
         mask = self.filter_mask(sp.filters).copy()
         n_filtered = int(mask.sum())
         if n_filtered == 0:
@@ -226,6 +241,23 @@ class SampleCache:
             s._cols[key] = s.sw.copy() if s.sw is not None else np.ones(s.n)
         return s._cols[key]
 
+    def design(self, s: Sample, keys: list[tuple[str, str | None]]) -> "_Design":
+        """The sample's :class:`_Design` over (at least) these columns, shared by the batch.
+
+        ``keys`` are (column, transform) pairs, ``("\0const", None)`` for the constant. The
+        design covers every column the batch's specifications on this sample asked for
+        (``Sample._want``), so it is built once per sample.
+        """
+        if s._design and all(k in s._design[0].index for k in keys):
+            return s._design[0]
+        have = list(s._design[0].keys) if s._design else []
+        union = list(dict.fromkeys([*have, *keys, *sorted(s._want, key=repr)]))
+        cols = [self.constant(s) if name == "\0const" else self.column(s, name, tr)
+                for name, tr in union]
+        d = _Design(union, cols, s.clusters)
+        s._design[:] = [d]
+        return d
+
 
 # ---------------------------------------------------------------------------------------------
 # Regressions
@@ -260,6 +292,148 @@ def _terms(names: list[str], b: np.ndarray, v: np.ndarray, dist, level: float) -
     return out
 
 
+class _Dist:
+    """Student's t with ``df`` degrees of freedom, or the standard normal (``df`` None).
+
+    The two calls the fit makes (``ppf``, ``sf``) go straight to :mod:`scipy.special`, the same
+    functions ``scipy.stats.t`` and ``scipy.stats.norm`` evaluate, without their per-call
+    argument checking (which cost more than a whole regression on a shared sample).
+    """
+
+    def __init__(self, df: float | None = None):
+        self.df = df
+
+    def ppf(self, q: float) -> float:
+        return float(special.ndtri(q) if self.df is None else special.stdtrit(self.df, q))
+
+    def sf(self, x: float) -> float:
+        return float(special.ndtr(-x) if self.df is None else special.stdtr(self.df, -x))
+
+
+# Regressions run on a _Design: the swept columns of one sample, reduced once.
+#
+# * ``tri`` is the m x m triangle R of a QR decomposition A = QR of the sample's n x m matrix of
+#   swept columns (computed by chunks of rows, "tall-skinny QR"). Q has orthonormal columns, so
+#   for any columns S and t, ||A_t - A_S b|| = ||R_t - R_S b||: every least-squares fit, residual
+#   sum of squares and cross-product of the batch is computed on m rows, with the accuracy of a
+#   QR on the full rows (no squared condition number, unlike normal equations).
+# * A score of any of the fit's regressions is u_i = (a_i'M) (a_i'c) for a row a_i of A, a
+#   matrix M and a coefficient vector c (e.g. M selects the regressors and c = e_y - E_S b).
+#   Cluster sums of the u_i only need each cluster's cross-products A_g'A_g, which the stacked
+#   triangles R_g of each cluster's rows reproduce exactly: with few clusters the cluster "meat"
+#   is computed on those G x m rows instead of n. Robust and HAC meats use the full rows (by
+#   chunks for robust, so memory stays small).
+#
+# COMPRESS_ROWS = False computes cluster meats on the full rows (the tests compare both).
+COMPRESS_ROWS = True
+_CHUNK = 1 << 16
+
+
+class _Design:
+    def __init__(self, keys: list[tuple[str, str | None]], cols: list[np.ndarray],
+                 clusters: Clusters | None):
+        self.keys = keys
+        self.index = {k: j for j, k in enumerate(keys)}
+        self.cols = cols
+        self.m = len(cols)
+        self.n = int(cols[0].shape[0])
+        self.clusters = clusters
+        self._compressed: tuple | None = None
+        parts = [np.linalg.qr(self._block(a, min(a + _CHUNK, self.n)), mode="r")
+                 for a in range(0, self.n, _CHUNK)]
+        self.tri = parts[0] if len(parts) == 1 else np.linalg.qr(np.vstack(parts), mode="r")
+
+    def _block(self, a: int, b: int) -> np.ndarray:
+        out = np.empty((b - a, self.m))
+        for j, c in enumerate(self.cols):
+            out[:, j] = c[a:b]
+        return out
+
+    def sel(self, keys: list) -> list[int]:
+        return [self.index[k] for k in keys]
+
+    def unit(self, idx: list[int]) -> np.ndarray:
+        """Selection matrix E (m x len(idx)): A @ E are those columns."""
+        e = np.zeros((self.m, len(idx)))
+        e[idx, np.arange(len(idx))] = 1.0
+        return e
+
+    # ---- meats -------------------------------------------------------------------------------
+    def _cluster_rows(self):
+        """(rows, [codes per dimension], [G per dimension], cell codes, G cells) or None."""
+        if self._compressed is None:
+            cl = self.clusters
+            cells = cl.codes[:, 0] if cl.ndim == 1 else cl.intersection()
+            ncell = int(cells.max()) + 1
+            if not COMPRESS_ROWS or ncell * self.m * 2 > self.n:
+                self._compressed = (False,)
+                return None
+            order = np.argsort(cells, kind="stable")
+            bounds = np.concatenate([[0], np.cumsum(np.bincount(cells, minlength=ncell))])
+            blocks, ids = [], []
+            for g in range(ncell):
+                take = order[bounds[g]:bounds[g + 1]]
+                blk = np.empty((take.size, self.m))
+                for j, c in enumerate(self.cols):
+                    blk[:, j] = c[take]
+                r = np.linalg.qr(blk, mode="r")
+                blocks.append(r)
+                ids.append(np.full(r.shape[0], g))
+            rows = np.vstack(blocks)
+            cell_of_row = np.concatenate(ids)
+            first = order[bounds[:-1]]  # one row of each cell: its code in every dimension
+            dims = [cl.codes[first, j][cell_of_row] for j in range(cl.ndim)]
+            self._compressed = (True, rows, dims, cell_of_row, ncell)
+        return self._compressed[1:] if self._compressed[0] else None
+
+    def meat(self, M: np.ndarray, c: np.ndarray, kind: str, k: int, hac_lags: int | None) -> np.ndarray:
+        """The corrected meat (see :func:`specflow.kernels.meat`) of the scores (A M) * (A c)."""
+        n = self.n
+        if kind == "robust":
+            s = np.zeros((M.shape[1], M.shape[1]))
+            for a in range(0, n, _CHUNK):
+                blk = self._block(a, min(a + _CHUNK, n))
+                u = (blk @ M) * (blk @ c)[:, None]
+                s += u.T @ u
+            return (n / (n - k)) * s
+        if kind == "hac":
+            blk = self._block(0, n)
+            return meat((blk @ M) * (blk @ c)[:, None], "hac", None, k=k, hac_lags=hac_lags)
+        if kind != "cluster" or self.clusters is None:
+            raise ValueError(f"no meat for covariance {kind!r} without clusters")
+        cl = self.clusters
+        comp = self._cluster_rows()
+        if comp is not None:
+            rows, dims, cells, ncell = comp
+            u = (rows @ M) * (rows @ c)[:, None]
+            codes = dims if cl.ndim == 1 else [dims[0], dims[1], cells]
+            sums = [_group_sums(u, cd, g) for cd, g in zip(codes, [*cl.counts[:cl.ndim], ncell])]
+            counts = [*cl.counts[:cl.ndim], ncell]
+        else:
+            codes = [cl.codes[:, j] for j in range(cl.ndim)]
+            counts = list(cl.counts)
+            if cl.ndim == 2:
+                inter = cl.intersection()
+                codes.append(inter)
+                counts.append(int(inter.max()) + 1)
+            sums = [np.zeros((g, M.shape[1])) for g in counts]
+            for a in range(0, n, _CHUNK):
+                b = min(a + _CHUNK, n)
+                blk = self._block(a, b)
+                u = (blk @ M) * (blk @ c)[:, None]
+                for sm, cd, g in zip(sums, codes, counts):
+                    sm += _group_sums(u, cd[a:b], g)
+        factor = lambda g: (g / (g - 1.0)) * ((n - 1.0) / (n - k))  # noqa: E731
+        parts = [factor(g) * (sm.T @ sm) for sm, g in zip(sums, counts)]
+        return parts[0] if cl.ndim == 1 else parts[0] + parts[1] - parts[2]
+
+
+def _group_sums(u: np.ndarray, codes: np.ndarray, g: int) -> np.ndarray:
+    """Sums of the rows of ``u`` (r, q) within groups 0..g-1: (g, q)."""
+    return np.stack([np.bincount(codes, weights=u[:, j], minlength=g) for j in range(u.shape[1])],
+                    axis=1)
+
+
 @dataclass
 class _Cov:
     kind: str
@@ -268,8 +442,9 @@ class _Cov:
     hac_lags: int | None
     warnings: list[str]
 
-    def sandwich(self, bread_inv: np.ndarray, scores: np.ndarray, k: int) -> np.ndarray:
-        m = meat(scores, self.kind, self.clusters, k=k, hac_lags=self.hac_lags)
+    def sandwich(self, bread_inv: np.ndarray, D: _Design, M: np.ndarray, c: np.ndarray,
+                 k: int) -> np.ndarray:
+        m = D.meat(M, c, self.kind, k, self.hac_lags)
         v = bread_inv @ m @ bread_inv
         if self.clusters is not None and self.clusters.ndim == 2:
             v, clipped = psd_clip(v)
@@ -278,73 +453,97 @@ class _Cov:
         return v
 
 
-def _ols(y: np.ndarray, X: np.ndarray, cov: _Cov) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    n, kx = X.shape
+def _ols(D: _Design, yi: int, xi: list[int], cov: _Cov):
+    """OLS of column ``yi`` on columns ``xi``: (b, V, e'e, c) with residual e = A c."""
+    n, kx = D.n, len(xi)
     k = kx + cov.k_extra
-    b = lstsq(X, y)
-    e = y - X @ b
-    xtx_inv = np.linalg.inv(X.T @ X)
+    TX, Ty = D.tri[:, xi], D.tri[:, yi]
+    b = lstsq(TX, Ty)
+    r = Ty - TX @ b
+    ee = float(r @ r)
+    E = D.unit(xi)
+    c = -(E @ b)
+    c[yi] += 1.0
+    xtx_inv = np.linalg.inv(TX.T @ TX)
     if cov.kind == "unadjusted":
-        v = (e @ e) / (n - k) * xtx_inv
+        v = ee / (n - k) * xtx_inv
     else:
-        v = cov.sandwich(xtx_inv, X * e[:, None], k)
-    return b, v, e
+        v = cov.sandwich(xtx_inv, D, E, c, k)
+    return b, v, ee, c
 
 
-def _kclass(y, R, Q, kappa: float, cov: _Cov):
-    """k-class estimate with regressors R, instruments Q (kappa = 1: 2SLS)."""
-    n, kr = R.shape
+def _kclass(D: _Design, yi: int, ri: list[int], qi: list[int], kappa: float, cov: _Cov):
+    """k-class estimate with regressors ``ri``, instruments ``qi`` (kappa = 1: 2SLS)."""
+    n, kr = D.n, len(ri)
     k = kr + cov.k_extra
-    Rhat = Q @ lstsq(Q, R)
-    Rt = (1 - kappa) * R + kappa * Rhat if kappa != 1 else Rhat
-    A = Rt.T @ R
+    TR, TQ, Ty = D.tri[:, ri], D.tri[:, qi], D.tri[:, yi]
+    ER, EQ = D.unit(ri), D.unit(qi)
+    Pi = lstsq(TQ, TR)  # Rhat = Q Pi
+    M = EQ @ Pi if kappa == 1 else (1 - kappa) * ER + kappa * (EQ @ Pi)  # Rt = A M
+    TRt = D.tri @ M
+    A = TRt.T @ TR
     A = (A + A.T) / 2
-    b = np.linalg.solve(A, Rt.T @ y)
-    e = y - R @ b
+    b = np.linalg.solve(A, TRt.T @ Ty)
+    c = -(ER @ b)
+    c[yi] += 1.0
+    r = D.tri @ c
+    ee = float(r @ r)
     Ainv = np.linalg.inv(A)
     if cov.kind == "unadjusted":
-        v = (e @ e) / (n - k) * Ainv
+        v = ee / (n - k) * Ainv
     else:
-        v = cov.sandwich(Ainv, Rt * e[:, None], k)
-    return b, v, e
+        v = cov.sandwich(Ainv, D, M, c, k)
+    return b, v, ee, c
 
 
-def _liml_kappa(y, Xe, W, Q) -> float:
+def _resid_gram(D: _Design, yi: list[int], wi: list[int]) -> np.ndarray:
+    """(Y - W lstsq(W, Y))' (Y - W lstsq(W, Y)) for columns Y = ``yi``, W = ``wi``."""
+    TY = D.tri[:, yi]
+    if wi:
+        TW = D.tri[:, wi]
+        TY = TY - TW @ lstsq(TW, TY)
+    return TY.T @ TY
+
+
+def _liml_kappa(D: _Design, yi: int, xei: list[int], wi: list[int], qi: list[int]) -> float:
     from scipy.linalg import eigh
 
-    Y = np.column_stack([y, Xe])
-    Yw = Y - W @ lstsq(W, Y) if W.shape[1] else Y
-    Yq = Y - Q @ lstsq(Q, Y)
-    A = Yw.T @ Yw
-    B = Yq.T @ Yq
+    A = _resid_gram(D, [yi, *xei], wi)
+    B = _resid_gram(D, [yi, *xei], qi)
     vals = eigh(A, B, eigvals_only=True)
     return float(vals.min())
 
 
-def _gmm(y, R, Q, cov: _Cov):
-    n, kr = R.shape
+def _gmm(D: _Design, yi: int, ri: list[int], qi: list[int], cov: _Cov):
+    n, kr = D.n, len(ri)
     k = kr + cov.k_extra
-    b1, _, e1 = _kclass(y, R, Q, 1.0, _Cov("unadjusted", None, cov.k_extra, None, []))
+    _, _, ee1, c1 = _kclass(D, yi, ri, qi, 1.0, _Cov("unadjusted", None, cov.k_extra, None, []))
+    TR, TQ, Ty = D.tri[:, ri], D.tri[:, qi], D.tri[:, yi]
+    EQ, ER = D.unit(qi), D.unit(ri)
+    QQ = TQ.T @ TQ
     if cov.kind == "unadjusted":
-        S = (e1 @ e1) / n * (Q.T @ Q)
+        S = ee1 / n * QQ
     else:
-        S = meat(Q * e1[:, None], cov.kind, cov.clusters, k=k, hac_lags=cov.hac_lags)
+        S = D.meat(EQ, c1, cov.kind, k, cov.hac_lags)
     Wm = np.linalg.inv(S)
-    RQ = R.T @ Q
+    RQ = TR.T @ TQ
     A = RQ @ Wm @ RQ.T
     A = (A + A.T) / 2
-    b = np.linalg.solve(A, RQ @ Wm @ (Q.T @ y))
-    e = y - R @ b
+    b = np.linalg.solve(A, RQ @ Wm @ (TQ.T @ Ty))
+    c = -(ER @ b)
+    c[yi] += 1.0
+    r = D.tri @ c
+    ee = float(r @ r)
     Ainv = np.linalg.inv(A)
     if cov.kind == "unadjusted":
-        S2 = (e @ e) / (n - k) * (Q.T @ Q)
+        S2 = ee / (n - k) * QQ
     else:
-        S2 = meat(Q * e[:, None], cov.kind, cov.clusters, k=k, hac_lags=cov.hac_lags)
+        S2 = D.meat(EQ, c, cov.kind, k, cov.hac_lags)
     G = RQ @ Wm
     v = Ainv @ (G @ S2 @ G.T) @ Ainv
     if cov.clusters is not None and cov.clusters.ndim == 2:
         v, _ = psd_clip(v)
-    return b, v, e
+    return b, v, ee, c
 
 
 # ---------------------------------------------------------------------------------------------
@@ -385,7 +584,19 @@ def fit(sp: Specification, df: pd.DataFrame, cache: SampleCache | None = None,
 def fit_many(specs: list[Specification], df: pd.DataFrame, diagnose: bool = True) -> list[FitResult]:
     """Fit specifications sharing one prepared dataset; samples and swept columns are shared."""
     cache = SampleCache(df)
+    for sp in specs:  # tell each sample which columns its specifications use: one _Design each
+        try:
+            cache.sample(sp)._want.update(_keys(sp))
+        except FitFailure:
+            pass  # reported by fit() below
     return [fit(sp, df, cache, diagnose) for sp in specs]
+
+
+def _keys(sp: Specification) -> list[tuple[str, str | None]]:
+    """The (column, transform) pairs of a specification's design, in the fit's order."""
+    const = [("\0const", None)] if sp.constant and not sp.absorb else []
+    return [(sp.outcome, sp.outcome_transform), *((c, None) for c in sp.endogenous),
+            *((c, None) for c in sp.instruments), *const, *((c, None) for c in sp.controls)]
 
 
 def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> FitResult:
@@ -406,27 +617,29 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
 
     use_const = sp.constant and not sp.absorb
     ctrl_names = (["const"] if use_const else []) + list(sp.controls)
-    ctrl_cols = ([cache.constant(s)] if use_const else []) + [cache.column(s, c) for c in sp.controls]
-    W = np.column_stack(ctrl_cols) if ctrl_cols else np.zeros((n, 0))
-    y = cache.column(s, sp.outcome, sp.outcome_transform)
-    Xe = np.column_stack([cache.column(s, c) for c in sp.endogenous])
-    Z = np.column_stack([cache.column(s, c) for c in sp.instruments])
+    D = cache.design(s, _keys(sp))
+    const_key = [("\0const", None)] if use_const else []
+    yi = D.index[(sp.outcome, sp.outcome_transform)]
+    xei = D.sel([(c, None) for c in sp.endogenous])
+    zi = D.sel([(c, None) for c in sp.instruments])
+    wi = D.sel(const_key + [(c, None) for c in sp.controls])
+    y = D.cols[yi]
 
     k_extra = s.df_absorbed_cluster if sp.covariance == "cluster" else s.df_absorbed
-    R = np.column_stack([Xe, W])
-    Q = np.column_stack([Z, W])
-    k_iv = R.shape[1] + k_extra
-    if n - k_iv <= 0 or n - Q.shape[1] - k_extra <= 0:
-        raise FitFailure(f"too few observations ({n}) for {Q.shape[1] + k_extra} parameters")
+    ri = xei + wi
+    qi = zi + wi
+    k_iv = len(ri) + k_extra
+    if n - k_iv <= 0 or n - len(qi) - k_extra <= 0:
+        raise FitFailure(f"too few observations ({n}) for {len(qi) + k_extra} parameters")
     if float(np.ptp(y)) == 0.0 if y.size else True:
         raise FitFailure(f"outcome '{sp.outcome}' has no variation in the sample")
-    bad = _collinear(W, ctrl_names) if W.shape[1] else None
+    bad = _collinear(D.tri[:, wi], ctrl_names) if wi else None
     if bad:
         raise FitFailure(f"control '{bad}' is collinear with the other controls or the fixed effects")
-    bad = _collinear(R, list(sp.endogenous) + ctrl_names)
+    bad = _collinear(D.tri[:, ri], list(sp.endogenous) + ctrl_names)
     if bad:
         raise FitFailure(f"endogenous regressor '{bad}' has no variation independent of the controls")
-    bad = _collinear(Q, list(sp.instruments) + ctrl_names)
+    bad = _collinear(D.tri[:, qi], list(sp.instruments) + ctrl_names)
     if bad:
         raise FitFailure(f"instrument '{bad}' is collinear with the other instruments or the controls")
 
@@ -439,17 +652,19 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
     res.n_clusters = list(s.clusters.counts) if s.clusters is not None else []
     res.df_absorbed = k_extra
 
-    small = stats.t(df=(min(s.clusters.counts) - 1) if (s.clusters is not None and sp.covariance == "cluster") else n - k_iv)
-    normal = stats.norm()
+    small = _Dist((min(s.clusters.counts) - 1) if (s.clusters is not None and sp.covariance == "cluster") else n - k_iv)
+    normal = _Dist()
 
-    def reg(role, dep, b, v, e, names_, dist, est, kappa=None, yv=None):
+    def reg(role, dep, b, v, ee, names_, dist, est, kappa=None, yv=None):
         # R-squared: centred with a constant, within (swept) with fixed effects, else uncentred
+        tv = D.tri[:, yv]
         if use_const:
-            c = cache.constant(s)
-            tss = float(((yv - c * (c @ yv) / (c @ c)) ** 2).sum())
+            tc = D.tri[:, D.index[("\0const", None)]]
+            r = tv - tc * ((tc @ tv) / (tc @ tc))
+            tss = float(r @ r)
         else:
-            tss = float(yv @ yv)
-        r2 = 1 - float(e @ e) / tss if tss > 0 else None
+            tss = float(tv @ tv)
+        r2 = 1 - ee / tss if tss > 0 else None
         return Regression(role=role, dependent=dep, estimator=est, covariance=sp.covariance,
                           terms=_terms(names_, b, v, dist, sp.level), nobs=n,
                           df_resid=int(n - len(names_) - k_extra), r2=r2, kappa=kappa)
@@ -457,33 +672,33 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
     timing: dict[str, float] = {}
     t1 = time.perf_counter()
     # OLS
-    b, v, e = _ols(y, R, cov)
-    small_ols = small if sp.covariance == "cluster" else stats.t(df=n - k_iv)
-    res.ols = reg("ols", sp.outcome, b, v, e, names, small_ols, "ols", yv=y)
+    b, v, ee, _ = _ols(D, yi, ri, cov)
+    small_ols = small if sp.covariance == "cluster" else _Dist(n - k_iv)
+    res.ols = reg("ols", sp.outcome, b, v, ee, names, small_ols, "ols", yv=yi)
     # first stages and reduced form
     qnames = list(sp.instruments) + ctrl_names
-    small_q = small if sp.covariance == "cluster" else stats.t(df=n - Q.shape[1] - k_extra)
+    small_q = small if sp.covariance == "cluster" else _Dist(n - len(qi) - k_extra)
     for j, x in enumerate(sp.endogenous):
-        bj, vj, ej = _ols(Xe[:, j], Q, cov)
-        res.first_stages.append(reg("first_stage", x, bj, vj, ej, qnames, small_q, "ols", yv=Xe[:, j]))
-    br, vr, er = _ols(y, Q, cov)
-    res.reduced_form = reg("reduced_form", sp.outcome, br, vr, er, qnames, small_q, "ols", yv=y)
+        bj, vj, eej, _ = _ols(D, xei[j], qi, cov)
+        res.first_stages.append(reg("first_stage", x, bj, vj, eej, qnames, small_q, "ols", yv=xei[j]))
+    br, vr, eer, _ = _ols(D, yi, qi, cov)
+    res.reduced_form = reg("reduced_form", sp.outcome, br, vr, eer, qnames, small_q, "ols", yv=yi)
     # IV
     kappa = None
     if sp.estimator == "2sls":
-        b, v, e = _kclass(y, R, Q, 1.0, cov)
+        b, v, ee, _ = _kclass(D, yi, ri, qi, 1.0, cov)
     elif sp.estimator in ("liml", "fuller"):
-        kappa = _liml_kappa(y, Xe, W, Q)
+        kappa = _liml_kappa(D, yi, xei, wi, qi)
         if sp.estimator == "fuller":
-            kappa = kappa - sp.fuller_alpha / (n - Q.shape[1] - k_extra)
-        b, v, e = _kclass(y, R, Q, kappa, cov)
+            kappa = kappa - sp.fuller_alpha / (n - len(qi) - k_extra)
+        b, v, ee, _ = _kclass(D, yi, ri, qi, kappa, cov)
     elif sp.estimator == "gmm":
-        b, v, e = _gmm(y, R, Q, cov)
+        b, v, ee, _ = _gmm(D, yi, ri, qi, cov)
     else:  # pragma: no cover - the spec model allows only the four
         raise FitFailure(f"unknown estimator {sp.estimator!r}")
     if not np.all(np.isfinite(b)) or not np.all(np.isfinite(np.diag(v))):
         raise FitFailure("the IV estimate is not finite (near-singular design)")
-    res.iv = reg("iv", sp.outcome, b, v, e, names, normal, sp.estimator, kappa=kappa, yv=y)
+    res.iv = reg("iv", sp.outcome, b, v, ee, names, normal, sp.estimator, kappa=kappa, yv=yi)
     timing["regressions"] = time.perf_counter() - t1
 
     head = res.iv.terms[0]
@@ -495,7 +710,7 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
 
     if diagnose:
         t2 = time.perf_counter()
-        diags, sets = _diagnose(sp, cache, s, y, Xe, Z, W, b[:p], k_extra, ctrl_names)
+        diags, sets = _diagnose(sp, cache, s, D, yi, xei, zi, wi, b[:p], k_extra)
         res.diagnostics.update(diags)
         res.confidence_sets.extend(sets)
         timing["diagnostics"] = time.perf_counter() - t2
@@ -505,27 +720,45 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
     return res
 
 
-def _diagnose(sp, cache, s, y, Xe, Z, W, beta, k_extra, ctrl_names):
+def _partialled(D: _Design, idx: list[int], wi: list[int]) -> np.ndarray:
+    """Columns ``idx`` (full rows) less their projection on columns ``wi`` (n x len(idx)).
+
+    The projection coefficients come from the design's triangle; the full rows are then
+    formed column by column, so memory stays at the output's size.
+    """
+    out = np.empty((D.n, len(idx)), order="F")  # columns contiguous
+    for j, i in enumerate(idx):
+        out[:, j] = D.cols[i]
+    if wi:
+        pi = lstsq(D.tri[:, wi], D.tri[:, idx])
+        for r, w in enumerate(wi):
+            out -= D.cols[w][:, None] * pi[r]
+    return out
+
+
+def _binary(v: np.ndarray) -> bool:
+    return bool(np.all((v == 0.0) | (v == 1.0)))
+
+
+def _diagnose(sp, cache, s, D, yi, xei, zi, wi, beta, k_extra):
     from .diagnostics import Design, diagnose
 
-    if W.shape[1]:
-        qw, _ = np.linalg.qr(W)
-        part = lambda a: a - qw @ (qw.T @ a)  # noqa: E731
-    else:
-        part = lambda a: a  # noqa: E731
     raw = {}
     if len(sp.endogenous) == 1 and len(sp.instruments) == 1:
         d = cache.numeric(sp.endogenous[0], "endogenous")[s.rows]
         z = cache.numeric(sp.instruments[0], "instruments")[s.rows]
-        if set(np.unique(d)) <= {0.0, 1.0} and set(np.unique(z)) <= {0.0, 1.0}:
+        if _binary(d) and _binary(z):
             raw = dict(
                 raw_d=d, raw_z=z,
                 raw_controls=np.column_stack([cache.numeric(c, "controls")[s.rows] for c in sp.controls]) if sp.controls else None,
                 control_names=tuple(sp.controls),
                 raw_weights=(s.sw ** 2) if s.sw is not None else None,
             )
+    full = _partialled(D, [yi, *xei, *zi], wi)
+    p = len(xei)
     design = Design(
-        y=part(y), X=part(Xe), Z=part(Z), k_exog=W.shape[1] + k_extra, covariance=sp.covariance,
+        y=full[:, 0], X=full[:, 1:1 + p], Z=full[:, 1 + p:], k_exog=len(wi) + k_extra,
+        covariance=sp.covariance,
         clusters=s.clusters, endog_names=tuple(sp.endogenous), instr_names=tuple(sp.instruments),
         beta=np.asarray(beta, dtype=float), estimator=sp.estimator, hac_lags=sp.hac_lags,
         level=sp.level, **raw,
