@@ -141,7 +141,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 # Modules that add commands: each has ``register(subparsers)`` and imports heavy libraries only
 # inside its command functions.
-COMMAND_MODULES: tuple[str, ...] = ("cli_tables",)
+COMMAND_MODULES: tuple[str, ...] = ("cli_tables", "cli_run", "cli_replicate")
 
 
 def _add_more(sub) -> None:
