@@ -1,6 +1,6 @@
 """Malformed specs: `specflow check` exits 2 and prints exactly one line per problem.
 
-Each case is a small inline spec (the valid BASE with one fault) written into tmp_path with
+Each case is a small inline spec (the well-formed BASE with one fault) written into tmp_path with
 its data. Every expected line was written from the fault: the file, the line of the key at
 fault (computed from the text: the line holding the given needle), the dotted key path and
 the message. Nothing may show a traceback.
