@@ -3,6 +3,7 @@
 set -euo pipefail
 need=()
 command -v pdflatex >/dev/null 2>&1 || need+=(texlive-latex-base texlive-latex-recommended texlive-latex-extra texlive-science)
+command -v kpsewhich >/dev/null 2>&1 && kpsewhich lmodern.sty >/dev/null 2>&1 || need+=(lmodern)
 command -v pdftotext >/dev/null 2>&1 || need+=(poppler-utils)
 command -v chromium >/dev/null 2>&1 || need+=(chromium)
 command -v slurmctld >/dev/null 2>&1 || need+=(slurm-wlm)
