@@ -199,6 +199,13 @@ def _filter_source(loaded: LoadedSpec, sp, canonical: str) -> tuple[tuple, str]:
     return ("model", "filter"), canonical
 
 
+NUMERIC_ROLES = ("outcome", "endogenous", "instruments", "controls", "weights", "hac_order")
+
+
+def _is_numeric(col: pd.Series) -> bool:
+    return bool(pd.api.types.is_numeric_dtype(col) or pd.api.types.is_bool_dtype(col))
+
+
 def validate_against_data(loaded: LoadedSpec, specs: list, frames: dict[str, pd.DataFrame]) -> list[Problem]:
     """Check every specification against its prepared data: columns, roles, order condition, rows.
 
@@ -247,6 +254,11 @@ def validate_against_data(loaded: LoadedSpec, specs: list, frames: dict[str, pd.
                     hint = f"; did you mean '{close[0]}'?" if close else ""
                     add(_role_key(loaded, sp, role, c),
                         f"column '{c}' ({role}) is not in dataset '{sp.dataset}'{hint}")
+                elif role in NUMERIC_ROLES and not _is_numeric(df[c]):
+                    bad = df[c][pd.to_numeric(df[c], errors="coerce").isna() & df[c].notna()]
+                    example = f" (e.g. value {bad.iloc[0]!r})" if len(bad) else ""
+                    add(_role_key(loaded, sp, role, c),
+                        f"column '{c}' ({role}) is not numeric{example}")
         owner: dict[str, str] = {}
         for role in ("outcome", "endogenous", "instruments", "controls", "weights"):
             for c in roles[role]:

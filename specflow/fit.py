@@ -145,7 +145,10 @@ class SampleCache:
         mask = self.filter_mask(sp.filters).copy()
         n_filtered = int(mask.sum())
         if n_filtered == 0:
-            raise FitFailure("the sample filters leave no rows")
+            for i in range(1, len(sp.filters) + 1):
+                if not self.filter_mask(sp.filters[:i]).any():
+                    raise FitFailure(f'filter "{sp.filters[i - 1]}" leaves no rows')
+            raise FitFailure("the dataset has no rows")
         numeric_roles = [(sp.outcome, "outcome")] + [(c, "endogenous") for c in sp.endogenous] + \
             [(c, "instruments") for c in sp.instruments] + [(c, "controls") for c in sp.controls]
         if sp.weights:
@@ -229,9 +232,9 @@ class SampleCache:
         key = name if transform is None else f"{name}\0{transform}"
         if key not in s._cols:
             v = (self.outcome(name, transform) if transform is not None else self.numeric(name, "regressor"))[s.rows]
-            v = s.demean(v)
+            v = s.demean(v, inplace=True)  # v is a fresh copy (fancy indexing)
             if s.sw is not None:
-                v = v * s.sw
+                v *= s.sw
             s._cols[key] = v
         return s._cols[key]
 
@@ -636,10 +639,11 @@ def _fit(sp: Specification, cache: SampleCache, t0: float, diagnose: bool) -> Fi
     bad = _collinear(D.tri[:, wi], ctrl_names) if wi else None
     if bad:
         raise FitFailure(f"control '{bad}' is collinear with the other controls or the fixed effects")
-    bad = _collinear(D.tri[:, ri], list(sp.endogenous) + ctrl_names)
+    # controls first (already of full rank), so the column named is the endogenous one
+    bad = _collinear(D.tri[:, wi + xei], ctrl_names + list(sp.endogenous))
     if bad:
         raise FitFailure(f"endogenous regressor '{bad}' has no variation independent of the controls")
-    bad = _collinear(D.tri[:, qi], list(sp.instruments) + ctrl_names)
+    bad = _collinear(D.tri[:, wi + zi], ctrl_names + list(sp.instruments))
     if bad:
         raise FitFailure(f"instrument '{bad}' is collinear with the other instruments or the controls")
 

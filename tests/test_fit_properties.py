@@ -135,16 +135,12 @@ def test_failure_is_recorded_with_the_column(small, what, change, named, estimat
     assert "\n" not in r.reason
 
 
-@pytest.mark.xfail(strict=True, reason="specflow/fit.py _fit: the collinearity check of "
-                   "Q = [Z, W] reports the later, control column ('const') as the 'instrument'")
 def test_instrument_collinear_with_instrument_and_constant_names_the_instrument(small):
     r = fit(make_spec(instruments=("z", "z3")), small, diagnose=False)
     assert r.status == "failed"
     assert "'z3'" in r.reason, r.reason
 
 
-@pytest.mark.xfail(strict=True, reason="specflow/fit.py _fit: the collinearity check of "
-                   "Q = [Z, W] reports the later, control column ('c') as the 'instrument'")
 def test_instrument_identical_to_control_names_the_instrument(small):
     r = fit(make_spec(instruments=("z_c",)), small, diagnose=False)
     assert r.status == "failed"
@@ -159,8 +155,6 @@ def test_instrument_identical_to_control_is_recorded(small):
     assert "'z_c'" in r.reason or "'c'" in r.reason
 
 
-@pytest.mark.xfail(strict=True, reason="specflow/fit.py _fit: the collinearity check of "
-                   "R = [X, W] reports the control ('c') as the 'endogenous regressor'")
 def test_endogenous_proportional_to_control_names_the_regressor(small):
     r = fit(make_spec(endogenous=("x_c",)), small, diagnose=False)
     assert r.status == "failed"
@@ -173,8 +167,6 @@ def test_all_rows_filtered_out(small):
     assert "no rows" in r.reason and "filter" in r.reason
 
 
-@pytest.mark.xfail(strict=True, reason="specflow/fit.py SampleCache.sample: 'the sample "
-                   "filters leave no rows' does not say which filter (or column)")
 def test_all_rows_filtered_out_names_the_filter(small):
     r = fit(make_spec(filters=("z > -5", "y > 1000")), small, diagnose=False)
     assert "y > 1000" in r.reason or "'y'" in r.reason, r.reason

@@ -226,9 +226,6 @@ def test_spec_file_not_found(tmp_path, capsys):
     assert capsys.readouterr().err == f"error: {path}: spec file not found\n"
 
 
-@pytest.mark.xfail(strict=True, reason="specflow/data.py validate_against_data does not check "
-                   "that numeric roles hold numbers: a text control passes `check` and fails "
-                   "only at fit time ('column ... is not numeric')")
 def test_text_column_in_a_numeric_role_is_caught_by_check(tmp_study, capsys):
     text = edit('controls = ["c1"]', 'controls = ["txt"]')
     path = tmp_study(text, data={"d.csv": frame()}).resolve()
