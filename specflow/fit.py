@@ -449,11 +449,19 @@ class _Cov:
                  k: int) -> np.ndarray:
         m = D.meat(M, c, self.kind, k, self.hac_lags)
         v = bread_inv @ m @ bread_inv
+        return self.clip(v)
+
+    def clip(self, v: np.ndarray) -> np.ndarray:
+        """Two-way cluster covariance: clip negative eigenvalues, recording a warning once."""
         if self.clusters is not None and self.clusters.ndim == 2:
             v, clipped = psd_clip(v)
-            if clipped and "two-way cluster covariance was not positive semi-definite; negative eigenvalues set to zero" not in self.warnings:
-                self.warnings.append("two-way cluster covariance was not positive semi-definite; negative eigenvalues set to zero")
+            if clipped and CLIP_WARNING not in self.warnings:
+                self.warnings.append(CLIP_WARNING)
         return v
+
+
+CLIP_WARNING = ("two-way cluster covariance was not positive semi-definite; negative "
+                "eigenvalues set to zero")
 
 
 def _ols(D: _Design, yi: int, xi: list[int], cov: _Cov):
@@ -545,7 +553,7 @@ def _gmm(D: _Design, yi: int, ri: list[int], qi: list[int], cov: _Cov):
     G = RQ @ Wm
     v = Ainv @ (G @ S2 @ G.T) @ Ainv
     if cov.clusters is not None and cov.clusters.ndim == 2:
-        v, _ = psd_clip(v)
+        v = cov.clip(v)
     return b, v, ee, c
 
 
