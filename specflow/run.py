@@ -617,12 +617,17 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     summary = _summarise(plan, batches)
     _remove_stale_batches(plan)
     _write_run_json(plan, prints, summary, t0, executor, jobs, cores)
+    from .revisions import snapshot
+
+    revision = snapshot(loaded, out_dir)  # keeps this run's estimates for `specflow diff`
     say(f"done in {_clock(time.monotonic() - t0)}: {summary['specifications']} specifications: "
         f"{summary['fitted']} fitted, {summary['reused']} reused, {summary['failed']} failed")
     for f in summary["failures"]:
         say(f"  failed {f['spec_id']} ({f['labels']}): {f['reason']}")
     say(f"outputs: {out_dir / 'estimates.csv'} (and the tables, figures and report beside it); "
         f"fits in {out_dir / 'fits'}; log: {log_file}")
+    for line in revision.summary_lines():
+        say(line)
     if summary["failed"]:
         say(f"warning: {summary['failed']} specification(s) failed; they are recorded with their "
             "reasons (exit code 1)")
