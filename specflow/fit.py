@@ -205,7 +205,10 @@ class SampleCache:
             sw = np.sqrt(wv)
         clusters = None
         if sp.cluster:
-            clusters = Clusters.from_columns([self._codes(c)[rows] for c in sp.cluster])
+            # Clusters.from_columns numbers each column's distinct values in sorted order; the
+            # columns here are integer codes already, which recode() renumbers alike in O(n)
+            cc = recode([self._codes(c)[rows] for c in sp.cluster])
+            clusters = Clusters(np.column_stack([c for c, _ in cc]), tuple(g for _, g in cc))
         dfa = absorbed_df(codes)
         dfa_c = dfa
         if clusters is not None and codes:
@@ -223,7 +226,11 @@ class SampleCache:
         if key not in self._numeric:
             s = self.df[name]
             vals = s.to_numpy()
-            _, inv = np.unique(vals.astype(str) if s.dtype == object else vals, return_inverse=True)
+            if vals.dtype.kind in "iu" and vals.size and 0 <= vals.min() and vals.max() < 4 * vals.size:
+                # small non-negative integers: the same numbering as np.unique, without a sort
+                inv = recode([vals])[0][0]
+            else:
+                _, inv = np.unique(vals.astype(str) if s.dtype == object else vals, return_inverse=True)
             self._numeric[key] = inv.astype(np.int64).ravel()
         return self._numeric[key]
 
@@ -352,6 +359,15 @@ class _Design:
             out[:, j] = c[a:b]
         return out
 
+    def _combo(self, v: np.ndarray) -> np.ndarray:
+        """A @ v on the full rows, built column by column (memory: two n-vectors)."""
+        out = np.zeros(self.n)
+        tmp = np.empty(self.n)
+        for j in np.flatnonzero(v):
+            np.multiply(self.cols[j], v[j], out=tmp)
+            out += tmp
+        return out
+
     def sel(self, keys: list) -> list[int]:
         return [self.index[k] for k in keys]
 
@@ -412,20 +428,21 @@ class _Design:
             codes = dims if cl.ndim == 1 else [dims[0], dims[1], cells]
             sums = [_group_sums(u, cd, g) for cd, g in zip(codes, [*cl.counts[:cl.ndim], ncell])]
             counts = [*cl.counts[:cl.ndim], ncell]
-        else:
+        else:  # many clusters: sums over the full rows, one score column at a time
             codes = [cl.codes[:, j] for j in range(cl.ndim)]
             counts = list(cl.counts)
             if cl.ndim == 2:
                 inter = cl.intersection()
                 codes.append(inter)
                 counts.append(int(inter.max()) + 1)
-            sums = [np.zeros((g, M.shape[1])) for g in counts]
-            for a in range(0, n, _CHUNK):
-                b = min(a + _CHUNK, n)
-                blk = self._block(a, b)
-                u = (blk @ M) * (blk @ c)[:, None]
+            sums = [np.empty((g, M.shape[1])) for g in counts]
+            e = self._combo(c)
+            for j in range(M.shape[1]):
+                u = self._combo(M[:, j])
+                u *= e
                 for sm, cd, g in zip(sums, codes, counts):
-                    sm += _group_sums(u, cd[a:b], g)
+                    sm[:, j] = np.bincount(cd, weights=u, minlength=g)
+                del u
         factor = lambda g: (g / (g - 1.0)) * ((n - 1.0) / (n - k))  # noqa: E731
         parts = [factor(g) * (sm.T @ sm) for sm, g in zip(sums, counts)]
         return parts[0] if cl.ndim == 1 else parts[0] + parts[1] - parts[2]
