@@ -340,7 +340,17 @@ def latex_context(td: TableData) -> dict:
         stats=[row(r) for r in td.stats],
         notes=[latex_escape(x) for x in td.notes],
         landscape=n > 6,
+        paper_height=_paper_height(td, landscape=n > 6),
     )
+
+
+def _paper_height(td: TableData, landscape: bool) -> str:
+    """Page height of the standalone document: A4, or taller when the table would overflow."""
+    rows = sum(len(p.rows) + 1 for p in td.panels) + len(td.stats) + 3
+    note_lines = sum(1 + len(x) // (150 if landscape else 100) for x in td.notes)
+    need = 4.0 + 0.55 * rows + 0.42 * note_lines  # cm, 11pt text (common practice sizes)
+    a4 = 21.0 if landscape else 29.7
+    return f"{max(a4, need):.1f}cm"
 
 
 # ---------------------------------------------------------------------------------------------

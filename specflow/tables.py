@@ -180,13 +180,13 @@ def estimator_text(res: FitResult | None, sp: Specification | None) -> str:
     return name
 
 
-def covariance_text(res: FitResult | None, sp: Specification | None) -> str:
+def covariance_text(res: FitResult | None, sp: Specification | None, short: bool = False) -> str:
     cov = res.covariance if res and res.covariance else (sp.covariance if sp else "")
     cluster = (res.cluster if res else []) or (list(sp.cluster) if sp else [])
     if cov == "cluster":
-        return "clustered by " + " and ".join(cluster)
+        return ("cluster: " if short else "clustered by ") + " and ".join(cluster)
     if cov == "robust":
-        return "heteroskedasticity-robust"
+        return "robust" if short else "heteroskedasticity-robust"
     if cov == "hac":
         lags = sp.hac_lags if sp is not None else None
         return "HAC (Bartlett" + (f", {lags} lags)" if lags is not None else ")")
@@ -402,6 +402,10 @@ class _Builder:
                 level = c.spec.level
                 break
         pct = f"{(level or 0.95) * 100:g}%"
+        # terms no estimated column has (e.g. the instrument of a failed column) get no rows
+        used = [n for n in terms if any(c.ok and reg is not None and reg.term(n) is not None
+                                        for c, reg in zip(self.cols, regs))]
+        terms = used or terms[:1]
         first = True
         for name in terms:
             coef, se, ci, rci, pv = [], [], [], [], []
@@ -589,7 +593,7 @@ class _Builder:
             elif kind == "estimator":
                 rows.append(Row("Estimator", [text(estimator_text(c.result, c.spec)) for c in self.cols]))
             elif kind == "covariance":
-                rows.append(Row("Standard errors", [text(covariance_text(c.result, c.spec)) for c in self.cols]))
+                rows.append(Row("Standard errors", [text(covariance_text(c.result, c.spec, short=True)) for c in self.cols]))
         return rows
 
     # notes -------------------------------------------------------------------------------
