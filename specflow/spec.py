@@ -525,26 +525,29 @@ def load_spec_text(text: str, path: Path) -> LoadedSpec:
 
 
 def _exprs(loaded: LoadedSpec) -> list[tuple[tuple, str, bool]]:
-    """Every expression in the spec: (key path, text, must be boolean)."""
+    """Every expression in the spec: (key path, text, must be boolean).
+
+    An empty string is an expression too (and refused as one), not a missing key.
+    """
     s = loaded.spec
     out: list[tuple[tuple, str, bool]] = []
     for name, ds in s.data.items():
         for col, e in ds.derive.items():
             out.append((("data", name, "derive", col), e, False))
-        if ds.filter:
+        if ds.filter is not None:
             out.append((("data", name, "filter"), ds.filter, True))
-    if s.model.filter:
+    if s.model.filter is not None:
         out.append((("model", "filter"), s.model.filter, True))
     for aname, axis in s.axes.items():
         for label, patch in axis.variants.items():
             for key in ("filter", "add_filter"):
                 v = getattr(patch, key)
-                if v:
+                if v is not None:
                     out.append((("axes", aname, "variants", label, key), v, True))
     for name, patch in s.extra.items():
         for key in ("filter", "add_filter"):
             v = getattr(patch, key)
-            if v:
+            if v is not None:
                 out.append((("extra", name, key), v, True))
     return out
 
