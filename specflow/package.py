@@ -342,11 +342,11 @@ def _md(s: str) -> str:
     return str(s).replace("|", "\\|").replace("\n", " ")
 
 
-def _id_list(ids: list[str], limit: int = 20) -> str:
+def _id_list(ids: list[str], listing: str, limit: int = 20) -> str:
     if not ids:
         return "none"
     if len(ids) > limit:
-        return f"{len(ids)} specifications (listed in exhibits.json)"
+        return f"{len(ids)} specifications (listed in {listing})"
     return ", ".join(f"`{i}`" for i in ids)
 
 
@@ -356,10 +356,12 @@ def exhibit_rows(loaded, lay: Layout, outputs: list[str], exmap: dict[str, list[
 
     titles: dict[str, tuple[str, str]] = {}
     for index, t in tables_of(loaded):
-        where = (f"`{lay.spec.name}` line {loaded.line_of(('table', index))}, `[[table]]` "
+        where = (f"`{lay.spec.as_posix()}` line {loaded.line_of(('table', index))}, `[[table]]` "
                  f"name = \"{t.name}\"" if index is not None and loaded.line_of(("table", index))
-                 else f"`{lay.spec.name}`, `[model]` and `[axes]` (the default table)")
+                 else f"`{lay.spec.as_posix()}`, `[model]` and `[axes]` (the default table)")
         titles[t.name] = (t.title or t.name, where)
+    spec_ref = f"`{lay.spec.as_posix()}`"
+    listing = f"`{(lay.output / 'exhibits.json').as_posix()}`"
     keys = dict(exmap)
     # files under tables/ and figures/ that exhibits.json does not name still get a row
     for rel in outputs:
@@ -373,25 +375,25 @@ def exhibit_rows(loaded, lay: Layout, outputs: list[str], exmap: dict[str, list[
         covered.update(files)
         kind, _, name = key.partition("/")
         if kind == "tables":
-            title, where = titles.get(name, (name, f"`{lay.spec.name}`"))
+            title, where = titles.get(name, (name, spec_ref))
             desc = f"Table: {title}"
         elif kind == "figures" and name == "spec_curve":
-            desc, where = "Figure: specification curve of the whole grid", f"`{lay.spec.name}` (every specification)"
+            desc, where = "Figure: specification curve of the whole grid", f"{spec_ref} (every fitted specification)"
         elif kind == "figures" and name.startswith("coef_"):
             t = name[len("coef_"):]
-            title, where = titles.get(t, (t, f"`{lay.spec.name}`"))
+            title, where = titles.get(t, (t, spec_ref))
             desc = f"Figure: coefficient plot of the table \"{title}\""
         elif key == "estimates":
-            desc, where = "Every estimate and diagnostic (one row per specification and term)", f"`{lay.spec.name}`"
+            desc, where = "Every estimate and diagnostic (one row per specification and term)", spec_ref
         else:
-            desc, where = key, f"`{lay.spec.name}`"
+            desc, where = key, spec_ref
         ids = keys[key]
         rows.append(dict(
             key=key, description=_md(desc), declared=_md(where),
             paper=_md(loaded.spec.package.exhibits.get(key, "not given (`[package] exhibits`)")),
             files=", ".join(f"`{(lay.output / f).as_posix()}`" for f in files) or "none written",
             file_list=[(lay.output / f).as_posix() for f in files],
-            specs=_id_list(ids) if ids is not None else "not recorded (no entry in exhibits.json)",
+            specs=_id_list(ids, listing) if ids is not None else "not recorded (no entry in exhibits.json)",
         ))
     others = [(lay.output / r).as_posix() for r in outputs if r not in covered]
     return rows, others
@@ -406,6 +408,10 @@ def _hardware_text(hw: dict) -> str:
     if mem:
         parts.append(f"{human_bytes(mem)} of memory")
     return ", ".join(str(p) for p in parts)
+
+
+def _count(n: int, one: str, many: str | None = None) -> str:
+    return f"{n} {one if n == 1 else (many or one + 's')}"
 
 
 def _fmt_seconds(s: float) -> str:
@@ -566,13 +572,19 @@ def build_package(loaded, out: Path, *, make_zip: bool = False, pdf: bool = True
         }
         (tmp / INFO_NAME).write_text(json.dumps(info, indent=1, sort_keys=True) + "\n", encoding="utf-8")
         payload = sum(sha256_and_size(p)[1] for p in tmp.rglob("*") if p.is_file())
+        n_tab = sum(1 for r in rows if r["key"].startswith("tables/"))
+        n_fig = sum(1 for r in rows if r["key"].startswith("figures/"))
+        n_ax, n_ex = len(loaded.spec.axes), len(loaded.spec.extra)
+        scope = (f"It fits {_count(len(specs), 'specification')} (the baseline, "
+                 f"{_count(n_ax, 'robustness axis', 'robustness axes')}"
+                 + (f" and {_count(n_ex, 'one-off specification')}" if n_ex else "")
+                 + f") on {_count(len(datasets), 'dataset')} and writes {_count(n_tab, 'table')}, "
+                 f"{_count(n_fig, 'figure')} and a file of every estimate with its diagnostics.")
         ctx = dict(
             title=loaded.spec.study.title, authors=", ".join(loaded.spec.study.authors),
             contact=pk.contact, description=loaded.spec.study.description.strip(),
             spec_path=lay.spec.as_posix(), output=lay.output.as_posix(), env=env,
-            n_specs=len(specs), n_axes=len(loaded.spec.axes), n_extra=len(loaded.spec.extra),
-            n_tables=sum(1 for r in rows if r["key"].startswith("tables/")),
-            n_figures=sum(1 for r in rows if r["key"].startswith("figures/")),
+            scope_text=scope,
             datasets=datasets, restricted=[d["name"] for d in datasets if not d["included"]],
             wheel=wheel_rel.as_posix(), n_pins=len(env["packages"]),
             main_packages=[(n, env["packages"][n]) for n in MAIN_PACKAGES if n in env["packages"]],

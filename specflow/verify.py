@@ -56,6 +56,7 @@ TEXT_SUFFIXES = (".tex", ".md", ".html", ".htm", ".txt")
 IMAGE_SUFFIXES = (".pdf", ".png", ".svg", ".jpg", ".jpeg")
 NOT_COMPARED = ("run.json",)
 FIT_IGNORED_KEYS = {"timing", "specflow_version"}
+NOT_WRITTEN = "the rerun did not write it"
 
 
 @dataclass
@@ -292,7 +293,7 @@ def compare_text(a_path: Path, b_path: Path) -> list[str]:
 def compare_file(rel: str, a: Path, b: Path, rtol: float, atol: float) -> tuple[str, list[str]]:
     """(status, details) for one output of the package (``a``) and the rerun (``b``)."""
     if not b.is_file():
-        return "missing", ["the rerun did not write it"]
+        return "missing", [NOT_WRITTEN]
     name = a.name.lower()
     if a.read_bytes() == b.read_bytes():
         return "reproduced", []
@@ -462,10 +463,12 @@ def render(report: VerifyReport) -> str:
             lines += [f"  | {t}" for t in report.run_tail]
     if report.exhibits:
         lines.append(f"exhibits (numbers within |rerun - package| <= {report.atol:g} + {report.rtol:g} x "
-                     "|package| in estimates and fits; tables digit for digit):")
+                     "|package| in estimates and fits, digit for digit in tables; missing: the "
+                     "rerun did not write it):")
         for e in report.exhibits:
             lines.append(f"  {e.status:<10} {e.path}")
-            lines += [f"             {d}" for d in e.details]
+            if e.details != [NOT_WRITTEN]:  # the status says it all
+                lines += [f"             {d}" for d in e.details]
     if report.problem:
         lines.append(f"stopped: {report.problem}")
     counts: dict[str, int] = {}
