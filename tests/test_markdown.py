@@ -135,3 +135,14 @@ def test_md_escape():
     assert md_escape("a|b*c_d") == "a\\|b\\*c\\_d"
     assert md_escape("x\\y") == "x\\\\y"
     assert md_escape("<b>") == "\\<b>"
+
+
+def test_labels_never_become_links_or_markup():
+    from specflow.collate import md_escape
+
+    label = "[see](http://example.org) *a* _b_ | <i>c</i> [0.1, 0.2]"
+    md = markdown_it.MarkdownIt("commonmark").enable("table")
+    toks = md.parse(f"| h |\n| --- |\n| {md_escape(label)} |\n")
+    inline = [t for t in toks if t.type == "inline"][-1]
+    assert {c.type for c in inline.children} <= {"text", "text_special"}
+    assert "".join(c.content for c in inline.children) == label
