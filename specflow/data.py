@@ -31,7 +31,7 @@ def resolve_path(loaded: LoadedSpec, name: str) -> Path:
     try:
         p = (loaded.folder / ds.path).resolve()
         root = loaded.folder.resolve()
-    except (OSError, ValueError) as exc:  # a NUL byte, a name too long, a symlink loop
+    except (OSError, ValueError, RuntimeError) as exc:  # NUL byte, name too long, symlink loop
         reason = exc.strerror if isinstance(exc, OSError) and exc.strerror else str(exc)
         raise SpecError([loaded.problem(("data", name, "path"),
                          f"path '{_shown(ds.path)}' is not a usable file name ({reason})")]) from None

@@ -564,7 +564,7 @@ def _output_problems(loaded: LoadedSpec) -> list[Problem]:
     try:
         out = (loaded.folder / out_text).resolve()
         root = loaded.folder.resolve()
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RuntimeError) as exc:  # NUL byte, name too long, symlink loop
         return [loaded.problem(path, f"output folder '{out_text}' is not a usable path ({exc})")]
     if root.is_relative_to(out):
         return [loaded.problem(path, f"output folder '{out_text}' would contain the spec file; "
@@ -572,7 +572,7 @@ def _output_problems(loaded: LoadedSpec) -> list[Problem]:
     for name, ds in loaded.spec.data.items():
         try:
             inside = (loaded.folder / ds.path).resolve().is_relative_to(out)
-        except (OSError, ValueError):
+        except (OSError, ValueError, RuntimeError):
             continue  # reported with the dataset
         if inside:
             return [loaded.problem(path, f"output folder '{out_text}' contains dataset '{name}' "
