@@ -184,7 +184,9 @@ class SampleCache:
             if n_single:
                 warnings.append(f"{n_single} singleton fixed-effect rows dropped")
                 rows = rows[keep]
-            fe_codes = [self._codes(c)[rows] for c in sp.absorb]
+                raw = [r[keep] for r in raw]  # renumbered below, as codes[rows] would be
+            fe_codes = raw
+            del raw
         if rows.size == 0:
             raise FitFailure("no rows left after removing missing values" +
                              (" and singleton groups" if n_single else ""))
@@ -198,6 +200,7 @@ class SampleCache:
             rows = rows[order]
             fe_codes = [c[order] for c in fe_codes]
         codes = recode(fe_codes)
+        del fe_codes
         sw = None
         wv = None
         if sp.weights:
