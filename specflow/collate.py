@@ -357,12 +357,12 @@ def _paper_height(td: TableData, landscape: bool) -> str:
 # Markdown
 
 
-_MD_SPECIAL = re.compile(r"([\\|*_`<])")
+_MD_SPECIAL = re.compile(r"([\\|*_`]|<(?=[A-Za-z/!?]))")
 
 
 def md_escape(s: str) -> str:
-    """Escape text for a GFM table cell: backslash, |, *, _, ` and <; and '](' so that no
-    label turns into a link (interval brackets stay readable)."""
+    """Escape text for a GFM table cell: backslash, |, *, _, `, a '<' that could open an HTML
+    tag, and '](' so that no label turns into a link (interval brackets stay readable)."""
     return _MD_SPECIAL.sub(r"\\\1", str(s)).replace("](", "\\](").replace("\n", " ")
 
 

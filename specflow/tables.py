@@ -604,7 +604,7 @@ class _Builder:
         notes.append(f"Each column is one specification; dependent variable: {outcome}.")
         ests = _by_column({c.number: estimator_text(c.result, c.spec) for c in cols})
         covs = _by_column({c.number: covariance_text(c.result, c.spec) for c in cols})
-        notes.append(f"IV estimator: {ests}. Standard errors ({covs}) in parentheses"
+        notes.append(f"IV estimator: {ests}. Standard errors in parentheses are {covs}"
                      + (", intervals in brackets." if ("robust_ci" in self.t.rows or "ci" in self.t.rows) else "."))
         if "robust_ci" in self.t.rows and "iv" in self.t.panels:
             methods: dict[int, str] = {}

@@ -466,3 +466,66 @@ def test_real_diagnostics_flow_into_the_tidy_frame():
             assert float(row.effective_f) == d.statistic
         else:
             assert row.effective_f == "" and "effective_f" in row.not_applicable
+
+
+TWO_ENDOG_TOML = """
+[study]
+title = "Two endogenous regressors"
+output = "out"
+[data.d]
+path = "d.csv"
+[model]
+outcome = "y"
+endogenous = ["x1", "x2"]
+instruments = ["z1", "z2", "z3"]
+covariance = "unadjusted"
+[axes.est]
+baseline = "2SLS"
+[axes.est.variants.LIML]
+estimator = "liml"
+[[table]]
+name = "t"
+across = "est"
+rows = ["se", "robust_ci", "first_stage_f", "effective_f", "overid_p", "endogeneity_p", "nobs"]
+"""
+
+
+def test_two_endogenous_regressors_get_rows_each_and_honest_gaps():
+    """Invented data with known effects (0.5, -0.3); checks layout, not the estimates."""
+    from specflow.data import load_frames
+    from specflow.fit import fit_many
+    from specflow.grid import expand
+    from specflow.spec import load_spec
+
+    d = scratch() / "two-endog"
+    d.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(3)
+    z1, z2, z3, v1, v2, e = rng.normal(size=(6, 300))
+    x1, x2 = z1 + 0.5 * z3 + v1, z2 + 0.3 * z3 + v2
+    pd.DataFrame(dict(y=0.5 * x1 - 0.3 * x2 + 0.5 * v1 + e, x1=x1, x2=x2, z1=z1, z2=z2, z3=z3)
+                 ).to_csv(d / "d.csv", index=False)
+    (d / "s.toml").write_text(textwrap.dedent(TWO_ENDOG_TOML).lstrip())
+    loaded = load_spec(d / "s.toml")
+    specs = expand(loaded)
+    results = fit_many(specs, load_frames(loaded, ["d"])["d"], diagnose=diagnostics_ready())
+    (td,) = [t for t in collate.build_tables(loaded, specs, results) if t.name == "t"]
+    iv = td.panels[0]
+    labels = [r.label for r in iv.rows]
+    assert labels.count("x1") == 1 and labels.count("x2") == 1
+    for j, r in enumerate(results):
+        for x in ("x1", "x2"):
+            row = iv.rows[labels.index(x)]
+            assert row.cells[j].text == fmt(r.iv.term(x).estimate, 3)
+    stat = {r.label: r for r in td.stats}
+    assert "First-stage F: x1" in stat and "First-stage F: x2" in stat
+    assert [p.title for p in td.panels[2:]] == ["First stage (dependent variable: x1)",
+                                                "First stage (dependent variable: x2)"]
+    if diagnostics_ready():
+        for j, r in enumerate(results):
+            assert stat["First-stage F: x2"].cells[j].text == fmt(r.diagnostics["first_stage_f:x2"].statistic, 2)
+            eff = r.diagnostics["effective_f"]
+            if not eff.applicable:  # Montiel Olea-Pflueger is for one endogenous regressor
+                assert stat["Effective F"].cells[j].text == "n.a."
+                assert any(eff.reason.rstrip(".") in n for n in td.notes)
+    md = collate.render_markdown(td)
+    assert "Overidentification p (Sargan)" in md  # unadjusted errors: Sargan
