@@ -160,7 +160,12 @@ def missing_metadata(loaded, dataset_names: list[str], run: dict, exhibit_keys: 
                 out.append(f"{what} for dataset '{name}': set [data.{name}] {key}")
         if not ds.redistribute and not ds.access:
             out.append(f"how to obtain dataset '{name}' (it is not included): set [data.{name}] access")
-    if run.get("runtime_seconds") is None:
+    if run.get("partial_run"):
+        fitted, total = run["partial_run"]
+        out.append(f"the measured runtime: the last run fitted {fitted} of {total} specifications "
+                   "(the rest were reused), so its time understates a replication; rerun with "
+                   "`specflow run --force` before packaging")
+    elif run.get("runtime_seconds") is None:
         out.append("the measured runtime: the output folder has no run.json with a runtime "
                    "(run the study with `specflow run`)")
     unnamed = [k for k in exhibit_keys if k not in s.package.exhibits]
@@ -189,6 +194,14 @@ def read_run_record(out_dir: Path) -> dict:
         if isinstance(v, (int, float)) and not isinstance(v, bool):
             out["runtime_seconds"] = float(v)
             break
+    fitted, total = rec.get("fitted"), rec.get("specifications")
+    full = rec.get("full_runtime_seconds")  # the last run that fitted every specification
+    if isinstance(full, (int, float)) and not isinstance(full, bool):
+        out["runtime_seconds"] = float(full)
+    elif "runtime_seconds" in out and isinstance(fitted, int) and isinstance(total, int) and fitted < total:
+        # a run that reused results says nothing about how long a replication takes
+        out["partial_run"] = (fitted, total)
+        del out["runtime_seconds"]
     for key in ("cores", "n_cores"):
         if isinstance(rec.get(key), int):
             out["cores"] = rec[key]
@@ -448,8 +461,9 @@ def make_pdf(readme: Path, pdf: Path, timeout: float = 120) -> str | None:
         return f"{reason}, and no chromium was found"
     html = MarkdownIt("commonmark").enable("table").render(readme.read_text(encoding="utf-8"))
     doc = ("<!doctype html><html><head><meta charset='utf-8'><style>body{font-family:sans-serif;"
-           "font-size:10pt;max-width:48em;margin:2em auto}table{border-collapse:collapse}"
-           "td,th{border:1px solid #999;padding:2px 6px;vertical-align:top}code{font-size:9pt}"
+           "font-size:10pt;max-width:48em;margin:2em auto}table{border-collapse:collapse;"
+           "table-layout:fixed;width:100%}td,th{border:1px solid #999;padding:2px 6px;"
+           "vertical-align:top;overflow-wrap:anywhere}code{font-size:8.5pt;overflow-wrap:anywhere}"
            "</style></head><body>" + html + "</body></html>")
     with tempfile.TemporaryDirectory() as tmp:
         page = Path(tmp) / "README.html"
@@ -595,6 +609,9 @@ def build_package(loaded, out: Path, *, make_zip: bool = False, pdf: bool = True
             runtime_bucket=runtime_bucket(runtime) if runtime is not None else None,
             runtime_seconds=runtime,
             runtime_text=_fmt_seconds(runtime) if runtime is not None else "an unrecorded time",
+            partial_run=run.get("partial_run"),
+            run_sentence=(f"a full run took {_fmt_seconds(runtime)} on the authors' machine"
+                          if runtime is not None else "the time of a full run is not recorded"),
             run_cores=f"{cores} core{'s' if cores != 1 else ''}",
             hardware_text=_hardware_text(hw) if hw else build_hw + " (the machine the package was built on)",
             build_hardware_text=build_hw,

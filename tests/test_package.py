@@ -179,6 +179,19 @@ def test_runtime_buckets_edges():
     assert runtime_bucket(14 * 86400) == "> 14 days"
 
 
+def test_runtime_comes_from_a_full_run(tmp_path):
+    from specflow.package import read_run_record
+
+    rec = tmp_path / "run.json"
+    # the fields specflow.run writes: runtime of this run, of the last full run, and the counts
+    rec.write_text(json.dumps({"runtime_seconds": 4.1, "full_runtime_seconds": 754.0,
+                               "fitted": 0, "specifications": 44}))
+    assert read_run_record(tmp_path)["runtime_seconds"] == 754.0
+    rec.write_text(json.dumps({"runtime_seconds": 4.1, "fitted": 3, "specifications": 44}))
+    got = read_run_record(tmp_path)
+    assert "runtime_seconds" not in got and got["partial_run"] == (3, 44)
+
+
 def test_requirements_pin_the_running_versions(built):
     from importlib.metadata import version
 

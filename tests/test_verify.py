@@ -36,6 +36,7 @@ def package(tmp_path_factory):
     out = load_spec(spec).output_dir
     assert (out / "runs" / "0001" / "estimates.csv").read_bytes() == (out / "estimates.csv").read_bytes()
     res = build_package(load_spec(spec), base / "package", make_zip=True, pdf=False)
+    res.study = spec.parent.parent
     return res
 
 
@@ -101,6 +102,25 @@ def test_symlink_in_a_package_is_refused(package, tmp_path):
     (p / "results/canal_yields/link.csv").symlink_to("/etc/hostname")
     rep = verify(p, manifest_only=True)
     assert not rep.ok and "results/canal_yields/link.csv" in rep.manifest.not_regular
+
+
+def test_data_that_is_not_included_is_checked_once_obtained(package, tmp_path):
+    study = tmp_path / "study"
+    shutil.copytree(package.study, study)
+    spec = study / "specs" / "canal_yields.toml"
+    spec.write_text(spec.read_text().replace("redistribute = true", "redistribute = false"))
+    p = build_package(load_spec(spec), tmp_path / "deposit", pdf=False).folder
+    rep = verify(p)  # stops before a rerun: the data must be obtained first
+    assert rep.classification == "failed" and rep.run_exit is None
+    assert "specs/data/farms.csv" in rep.problem
+    assert not (p / "specs/data").exists()
+    (p / "specs/data").mkdir()
+    shutil.copyfile(study / "specs/data/farms.csv", p / "specs/data/farms.csv")
+    rep = verify(p, manifest_only=True)
+    assert rep.ok and rep.manifest.restricted_present == ["specs/data/farms.csv"]
+    (p / "specs/data/farms.csv").write_text("farm_id\n1\n")  # not the authors' file
+    rep = verify(p, manifest_only=True)
+    assert not rep.ok and rep.manifest.changed[0][0] == "specs/data/farms.csv"
 
 
 def test_zip_of_the_package_checks_out(package, tmp_path, capsys):
