@@ -195,6 +195,8 @@ def _prune(out_dir: Path, keep: int) -> list[int]:
 
 KEY = ("spec_id", "term")
 AXIS_PREFIX = "axis_"
+# free text that follows the numbers or the code's wording, not the estimates
+TEXT_IGNORED = {"warnings", "not_applicable", "ci_robust_text"}
 NON_LABEL = {"spec_id", "term", "estimator", "covariance", "status", "reason", "dataset",
              "outcome", "panel", "role"}
 
@@ -349,7 +351,8 @@ def diff_estimates(old_path: Path, new_path: Path, *, old_label: str = "old", ne
     new = read_estimates(new_path)
     numeric = [c for c in old.columns if c in new.columns and c not in KEY
                and pd.api.types.is_numeric_dtype(old[c]) and pd.api.types.is_numeric_dtype(new[c])]
-    textual = [c for c in old.columns if c in new.columns and c not in KEY and c not in numeric]
+    textual = [c for c in old.columns if c in new.columns and c not in KEY and c not in numeric
+               and c not in TEXT_IGNORED]
     label_cols = [c for c in new.columns if c.startswith(AXIS_PREFIX)] + (["extra"] if "extra" in new.columns else [])
     if not label_cols:  # an older layout: axis columns without prefix
         label_cols = [c for c in new.columns if c not in NON_LABEL and c not in numeric]

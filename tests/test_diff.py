@@ -106,7 +106,7 @@ def test_only_the_last_keep_runs_are_kept(tmp_path):
 
 def _write(path, rows):
     cols = ["spec_id", "axis_instruments", "extra", "term", "term_role", "estimate", "se", "p",
-            "nobs", "effective_f", "status"]
+            "nobs", "effective_f", "status", "warnings"]
     pd.DataFrame(rows, columns=cols).to_csv(path, index=False)
 
 
@@ -127,7 +127,7 @@ def test_flags_on_invented_estimates(tmp_path):
            dict(old[2], estimate=-0.02),  # sign (and 0.7 SE)
            dict(old[3], estimate=0.19, p=0.060),  # crossed 5%
            dict(old[4], effective_f=8.0),  # crossed F = 10
-           dict(old[5]),  # unchanged
+           dict(old[5], warnings="reworded warning"),  # same numbers: not a change
            dict(base, spec_id="s8", estimate=0.5, se=0.1, p=0.001, effective_f=30.0),
            dict(old[7], estimate=2.0)]  # a control's row: ignored unless all_terms
     _write(tmp_path / "old.csv", old)
