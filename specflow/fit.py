@@ -77,6 +77,25 @@ class Sample:
         return int(self.rows.size)
 
 
+def _numbers_or_fail(s: pd.Series, name: str, role: str) -> np.ndarray:
+    """A non-numeric column as floats if it holds only numbers (as Python objects), else a failure."""
+    what = f"column '{name}' ({role})"
+    if isinstance(s.dtype, pd.CategoricalDtype):
+        raise FitFailure(f"{what} is categorical, not numeric")
+    if pd.api.types.is_datetime64_any_dtype(s) or pd.api.types.is_timedelta64_dtype(s):
+        raise FitFailure(f"{what} holds dates or times, not numbers")
+    present = s[s.notna()]
+    text = present[present.map(lambda v: isinstance(v, (str, bytes)))]
+    if len(text):
+        raise FitFailure(f"{what} is not numeric (e.g. text {str(text.iloc[0])[:40]!r})")
+    converted = pd.to_numeric(present, errors="coerce")
+    odd = present[converted.isna()]
+    if len(odd):
+        raise FitFailure(f"{what} is not numeric (e.g. value {str(odd.iloc[0])[:40]!r} "
+                         f"of type {type(odd.iloc[0]).__name__})")
+    return pd.to_numeric(s, errors="coerce").to_numpy(dtype="float64", na_value=np.nan)
+
+
 class SampleCache:
     """Builds and remembers samples and swept columns for one prepared frame."""
 
@@ -97,9 +116,7 @@ class SampleCache:
         elif pd.api.types.is_numeric_dtype(s):
             v = s.to_numpy(dtype="float64", na_value=np.nan)
         else:
-            bad = s[pd.to_numeric(s, errors="coerce").isna() & s.notna()]
-            example = repr(bad.iloc[0]) if len(bad) else "?"
-            raise FitFailure(f"column '{name}' ({role}) is not numeric (e.g. value {example})")
+            v = _numbers_or_fail(s, name, role)
         self._numeric[name] = v
         return v
 
@@ -109,7 +126,10 @@ class SampleCache:
             v = self.numeric(name, "outcome")
             if transform == "standardize":
                 ok = np.isfinite(v)
-                v = (v - np.nanmean(v[ok])) / np.nanstd(v[ok], ddof=1)
+                sd = float(np.std(v[ok], ddof=1)) if ok.sum() > 1 else 0.0
+                if not sd > 0:
+                    raise FitFailure(f"outcome '{name}' has no variation, so it cannot be standardized")
+                v = (v - np.mean(v[ok])) / sd
             else:
                 with np.errstate(invalid="ignore", divide="ignore"):
                     v = TRANSFORMS[transform](v)
@@ -157,23 +177,34 @@ class SampleCache:
             numeric_roles.append((sp.hac_order, "hac_order"))
         ok = mask.copy()
         y = self.outcome(sp.outcome, sp.outcome_transform)
-        ok &= np.isfinite(y)
-        for name, role in numeric_roles[1:]:
-            ok &= np.isfinite(self.numeric(name, role))
-        for name in (*sp.absorb, *sp.cluster):
-            ok &= self.df[name].notna().to_numpy()
+        present = [(sp.outcome, "outcome", np.isfinite(y))]
+        present += [(name, role, np.isfinite(self.numeric(name, role))) for name, role in numeric_roles[1:]]
+        present += [(name, role, self.df[name].notna().to_numpy())
+                    for role, names in (("absorb", sp.absorb), ("cluster", sp.cluster)) for name in names]
+        missing_by: dict[str, int] = {}
+        for name, role, has in present:
+            ok &= has
+            lost = int((mask & ~has).sum())
+            if lost == n_filtered:
+                raise FitFailure(f"column '{name}' ({role}) has no usable values in the sample "
+                                 "(all missing or infinite" +
+                                 (f" after the {sp.outcome_transform} transform)" if role == "outcome"
+                                  and sp.outcome_transform != "none" else ")"))
+            if lost:
+                missing_by.setdefault(name, lost)
         warnings: list[str] = []
+        n_missing = n_filtered - int(ok.sum())
+        if n_missing:
+            by = ", ".join(f"{c}: {k}" for c, k in missing_by.items())
+            warnings.append(f"{n_missing} rows dropped for missing or infinite values ({by})")
         if sp.weights:
             w = self.numeric(sp.weights, "weights")
             if np.any(w[ok] < 0):
                 raise FitFailure(f"weights column '{sp.weights}' has negative values")
             zero = ok & (w == 0)
             if zero.any():
-                warnings.append(f"{int(zero.sum())} rows with zero weight dropped")
+                warnings.append(f"{int(zero.sum())} rows with zero weight in '{sp.weights}' dropped")
                 ok &= ~zero
-        n_missing = n_filtered - int(ok.sum())
-        if n_missing:
-            warnings.append(f"{n_missing} rows dropped for missing or infinite values")
         rows = np.flatnonzero(ok)
         n_single = 0
         fe_codes: list[np.ndarray] = []
@@ -182,14 +213,17 @@ class SampleCache:
             keep = drop_singletons(raw)
             n_single = int((~keep).sum())
             if n_single:
-                warnings.append(f"{n_single} singleton fixed-effect rows dropped")
+                warnings.append(f"{n_single} rows in singleton groups of the fixed effects "
+                                f"({', '.join(sp.absorb)}) dropped")
                 rows = rows[keep]
                 raw = [r[keep] for r in raw]  # renumbered below, as codes[rows] would be
             fe_codes = raw
             del raw
         if rows.size == 0:
-            raise FitFailure("no rows left after removing missing values" +
-                             (" and singleton groups" if n_single else ""))
+            dropped = [what for what, k in (("missing values", n_missing),
+                                            ("zero weights", n_filtered - n_missing - ok.sum()),
+                                            ("singleton groups", n_single)) if k]
+            raise FitFailure("no rows left after removing " + " and ".join(dropped))
         key = (sp.absorb, sp.weights, sp.cluster, sp.hac_order, hash(rows.tobytes()), rows.size)
         if key in self._samples:
             s = self._samples[key]
@@ -233,7 +267,9 @@ class SampleCache:
                 # small non-negative integers: the same numbering as np.unique, without a sort
                 inv = recode([vals])[0][0]
             else:
-                _, inv = np.unique(vals.astype(str) if s.dtype == object else vals, return_inverse=True)
+                if vals.dtype.kind not in "biufmM":  # text, categories, nullable types: by label
+                    vals = np.asarray(vals, dtype=object).astype(str)  # missing ones are dropped
+                _, inv = np.unique(vals, return_inverse=True)
             self._numeric[key] = inv.astype(np.int64).ravel()
         return self._numeric[key]
 
@@ -340,6 +376,7 @@ class _Dist:
 # COMPRESS_ROWS = False computes cluster meats on the full rows (the tests compare both).
 COMPRESS_ROWS = True
 _CHUNK = 1 << 16
+_DENSE_MAX = 1 << 23  # keep the n x m matrix itself when it has at most this many entries
 
 
 class _Design:
@@ -352,14 +389,30 @@ class _Design:
         self.n = int(cols[0].shape[0])
         self.clusters = clusters
         self._compressed: tuple | None = None
+        self.dense = None
+        if self.n * self.m <= _DENSE_MAX:  # small: one F-ordered copy serves every product
+            self.dense = np.empty((self.n, self.m), order="F")
+            for j, c in enumerate(cols):
+                self.dense[:, j] = c
         parts = [np.linalg.qr(self._block(a, min(a + _CHUNK, self.n)), mode="r")
                  for a in range(0, self.n, _CHUNK)]
         self.tri = parts[0] if len(parts) == 1 else np.linalg.qr(np.vstack(parts), mode="r")
 
     def _block(self, a: int, b: int) -> np.ndarray:
+        if self.dense is not None:
+            return self.dense[a:b]
         out = np.empty((b - a, self.m))
         for j, c in enumerate(self.cols):
             out[:, j] = c[a:b]
+        return out
+
+    def times(self, C: np.ndarray) -> np.ndarray:
+        """A @ C on the full rows (n x q, columns contiguous)."""
+        if self.dense is not None:
+            return (C.T @ self.dense.T).T
+        out = np.empty((self.n, C.shape[1]), order="F")
+        for j in range(C.shape[1]):
+            out[:, j] = self._combo(C[:, j])
         return out
 
     def _combo(self, v: np.ndarray) -> np.ndarray:
@@ -758,14 +811,10 @@ def _partialled(D: _Design, idx: list[int], wi: list[int]) -> np.ndarray:
     The projection coefficients come from the design's triangle; the full rows are then
     formed column by column, so memory stays at the output's size.
     """
-    out = np.empty((D.n, len(idx)), order="F")  # columns contiguous
-    for j, i in enumerate(idx):
-        out[:, j] = D.cols[i]
+    C = D.unit(idx)
     if wi:
-        pi = lstsq(D.tri[:, wi], D.tri[:, idx])
-        for r, w in enumerate(wi):
-            out -= D.cols[w][:, None] * pi[r]
-    return out
+        C -= D.unit(wi) @ lstsq(D.tri[:, wi], D.tri[:, idx])
+    return D.times(C)
 
 
 def _binary(v: np.ndarray) -> bool:
