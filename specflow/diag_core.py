@@ -68,6 +68,15 @@ def safe_solve(a: np.ndarray, b: np.ndarray, what: str) -> np.ndarray:
     return np.linalg.solve(a, b)
 
 
+def well_conditioned(a: np.ndarray, tol: float = 1e-12) -> bool:
+    """Whether a symmetric PSD matrix is positive definite after scaling to unit diagonal."""
+    d = np.diag(a)
+    if not np.all(np.isfinite(a)) or np.any(d <= 0):
+        return False
+    w = np.linalg.eigvalsh(a / np.sqrt(np.outer(d, d)))
+    return bool(w[0] > tol)
+
+
 def quad_form_inv(a: np.ndarray, h: np.ndarray, what: str) -> float:
     """``h' a^{-1} h`` for a positive definite ``a``."""
     return float(h @ safe_solve(a, h, what))
@@ -119,6 +128,9 @@ class Core:
             return
         if np.any(np.diag(G)[1:] <= 0):
             self.problem = "a regressor or instrument has no variation once the controls are partialled out"
+            return
+        if G[0, 0] <= 0:
+            self.problem = "the outcome has no variation once the controls are partialled out"
             return
         self.G = G
         zz = G[p + 1:, p + 1:]
@@ -217,6 +229,17 @@ class Core:
     @cached_property
     def e_2sls(self) -> np.ndarray:
         return self.y - self.X @ self.beta_2sls
+
+    def require_structural_noise(self) -> None:
+        """Refuse statistics of the structural residuals when they are (numerically) zero."""
+        if self.ee(self.beta_2sls) <= 1e-13 * self.YY[0, 0]:
+            raise Unavailable("the outcome is an exact linear function of the endogenous regressors")
+
+    def require_first_stage_noise(self) -> None:
+        """Refuse statistics that divide by the first-stage residual covariance when it is singular."""
+        scale = np.sqrt(np.diag(self.YY[1:, 1:]))  # relative to X'X: 1 - largest canonical correlation
+        if np.linalg.eigvalsh(self.YMY[1:, 1:] / np.outer(scale, scale))[0] <= 1e-12:
+            raise Unavailable("an endogenous regressor is an exact linear function of the instruments")
 
     def ee(self, beta: np.ndarray) -> float:
         """``(y - X beta)'(y - X beta)`` from the Gram matrix."""

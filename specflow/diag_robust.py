@@ -14,7 +14,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import linalg, optimize, special, stats
 
-from .diag_core import Core, Unavailable, chi2_sf, f_sf, finite
+from .diag_core import Core, Unavailable, chi2_sf, f_sf, finite, well_conditioned
 from .results import ConfidenceSet, Diagnostic
 
 
@@ -139,6 +139,7 @@ def ar_set(c: Core, crit: float | None = None) -> ConfidenceSet:
     """
     if c.p != 1:
         raise Unavailable("the AR set is computed for one endogenous regressor")
+    c.require_structural_noise()
     L, df2 = c.L, (c.df_fs if not c.robust else c.df_denom(c.k + c.L))
     w = L * c.fcrit(L, df2) if crit is None else float(crit)
     b2 = c.beta_2sls[0]
@@ -161,6 +162,8 @@ def ar_set(c: Core, crit: float | None = None) -> ConfidenceSet:
     else:
         hy, hx = c.ZY[:, 0], c.ZY[:, 1]
         blk = c.M_rf
+        if not well_conditioned(blk, 1e-10):  # some M(beta) would be singular (e.g. too few clusters)
+            raise Unavailable("the covariance of the Anderson-Rubin regression is singular")
         myy, myx, mxx = blk[:L, :L], blk[:L, L:], blk[L:, L:]
         # centre at the 2SLS estimate: beta = b2 + scale t
         h0, h1 = hy - b2 * hx, -scale * hx
@@ -296,6 +299,7 @@ def tf(c: Core, first_stage: Diagnostic) -> tuple[Diagnostic, ConfidenceSet]:
         raise Unavailable("tF is defined for one endogenous regressor and one instrument")
     if not first_stage.applicable or first_stage.statistic is None:
         raise Unavailable(f"the first-stage F is not available ({first_stage.reason})")
+    c.require_structural_noise()
     first_stage_F = float(first_stage.statistic)
     b = float(c.beta_2sls[0])
     se = finite(iv_se(c), "the 2SLS standard error")
@@ -345,6 +349,9 @@ def clr_pvalue(lr: np.ndarray, qt: np.ndarray, L: int) -> np.ndarray:
 def _clr_parts(c: Core, b: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """LR, Q_S, Q_T for homogeneous b0 = b (2, m) and a0 = a (2, m) columns."""
     om = c.omega
+    c.require_structural_noise()
+    if not well_conditioned(om):
+        raise Unavailable("the reduced-form error covariance is singular")
     omi = np.linalg.inv(om)
     G = c.QY  # (L, 2): Z-coordinates of [y, x]
     S = (G @ b) / np.sqrt(np.einsum("im,ij,jm->m", b, om, b))

@@ -144,6 +144,7 @@ def cragg_donald(c: Core) -> Diagnostic:
     Assumes homoskedastic errors (the same for every covariance type). Compared with the
     Stock-Yogo critical values (key ``stock_yogo``); no p-value.
     """
+    c.require_first_stage_noise()
     xpx = c.YPY[1:, 1:]
     svv = c.YMY[1:, 1:] / c.df_fs
     lc = np.linalg.cholesky(svv)
@@ -205,6 +206,7 @@ def kleibergen_paap(c: Core, kronecker: bool | None = None) -> tuple[Diagnostic,
     """
     kron = (not c.robust) if kronecker is None else kronecker
     L, p = c.L, c.p
+    c.require_first_stage_noise()
     if kron:
         meat_lm = np.kron(c.YY[1:, 1:] / c.n, c.ZZ)
         meat_w = np.kron(c.YMY[1:, 1:] / c.df_fs, c.ZZ)

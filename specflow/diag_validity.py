@@ -24,6 +24,7 @@ def _overid_df(c: Core) -> int:
 
 def _proj_resid(c: Core) -> tuple[float, float]:
     """(e'P_Z e, e'e) at the 2SLS residuals, from the Gram matrix."""
+    c.require_structural_noise()
     b = c.beta_2sls
     ep = c.QY[:, 0] - c.QY[:, 1:] @ b
     return float(ep @ ep), c.ee(b)
@@ -84,6 +85,7 @@ def _gmm(c: Core, cols: list[int], S: np.ndarray) -> tuple[np.ndarray, float]:
 
 def _moment_cov(c: Core) -> tuple[np.ndarray, str]:
     """Moment covariance at the 2SLS residuals: raw robust/cluster/HAC meat, or s^2 Z'Z."""
+    c.require_structural_noise()
     if not c.robust:
         return (c.ee(c.beta_2sls) / c.n) * c.ZZ, "unadjusted"
     return c.block("ze", None), c.cov
@@ -162,6 +164,7 @@ def c_stats(c: Core) -> dict[str, Diagnostic]:
 def _endog_delta(c: Core) -> tuple[float, float]:
     """delta = e0'P_[Z,X] e0 - e'P_Z e and e0'e0 (OLS residuals e0, 2SLS residuals e)."""
     p = c.p
+    c.require_structural_noise()
     xx = c.YY[1:, 1:]
     bo = np.linalg.solve(xx, c.YY[1:, 0])
     ze0 = c.ZY[:, 0] - c.ZY[:, 1:] @ bo  # Z'e0; X'e0 = 0
@@ -237,6 +240,8 @@ def control_function(c: Core) -> Diagnostic:
     not affect the null distribution.
     """
     p = c.p
+    c.require_structural_noise()
+    c.require_first_stage_noise()
     k_used = c.k + 2 * p
     if c.n - k_used < 1:
         raise Unavailable("no residual degrees of freedom for the control-function regression")
