@@ -36,7 +36,7 @@ from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 
 from .replicate import (
-    INFO_NAME, MANIFEST_NAME, RUNTIME_BUCKETS, SOFTWARE_DIR, Manifest, ReplicationError,
+    INFO_NAME, MANIFEST_NAME, RUNTIME_BUCKETS, SOFTWARE_DIR, ReplicationError,
     build_manifest, environment, human_bytes, python_command, runtime_bucket, sha256_and_size,
 )
 
@@ -667,4 +667,4 @@ def write_zip(folder: Path, target: Path) -> None:
         raise
 
 
-__all__ = ["build_package", "build_wheel", "write_zip", "PackageResult", "Manifest"]
+__all__ = ["build_package", "build_wheel", "write_zip", "PackageResult"]

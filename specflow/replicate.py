@@ -260,12 +260,6 @@ def check_manifest(root: Path) -> ManifestCheck:
     return res
 
 
-def write_atomic_text(path: Path, text: str) -> None:
-    from .data import write_atomic_text as _w
-
-    _w(path, text)
-
-
 # ---------------------------------------------------------------------------------------------
 # The environment
 

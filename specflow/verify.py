@@ -9,8 +9,10 @@ Steps, in order (the package itself is never written to):
    or extra file (or a symlink) is named and the verification fails there, without a rerun.
    A top-level ``.venv/`` (the environment step 1 of the README's instructions creates) is
    left out of the check and of the copy.
-3. The package is copied into the scratch folder, its output folder is removed from the copy,
-   and the study is rerun there with ``specflow run`` (the specflow of this environment).
+3. The package is copied into the scratch folder; its spec is loaded there and refused if its
+   output folder or a dataset would lie outside the copy; the output folder is removed from
+   the copy and the study is rerun with ``specflow run`` (the specflow of this environment;
+   nothing from the package is executed: the spec is data and the workflow is specflow's own).
 4. Every output the package lists is compared with the rerun's:
 
    * ``estimates.csv`` / ``estimates.parquet`` and ``fits/*.json``: every number within
@@ -390,6 +392,9 @@ def verify(package: Path, *, rtol: float = DEFAULT_RTOL, atol: float = DEFAULT_A
             return report
         work = base / "rerun"
         _copy_package(root, work)
+        report.problem = _outside(work, info)
+        if report.problem:
+            return report
         report.run_log = base / "rerun.log"
         n = cores or int(info.get("cores") or 0) or (os.cpu_count() or 1)
         report.run_exit, report.run_tail = rerun(work, info, n, report.run_log, timeout)
@@ -402,6 +407,31 @@ def verify(package: Path, *, rtol: float = DEFAULT_RTOL, atol: float = DEFAULT_A
         if own_scratch and not keep and (done_ok or manifest_only or report.run_exit is None):
             shutil.rmtree(base, ignore_errors=True)
             report.scratch = None
+
+
+def _outside(work: Path, info: dict) -> str:
+    """Why the package's spec would read or write outside its own folder ('' if it does not)."""
+    from .data import resolve_path
+    from .errors import SpecflowError
+    from .spec import load_spec
+
+    top = work.resolve()
+    try:
+        loaded = load_spec(work / safe_relpath(info["spec"]))
+    except SpecflowError as exc:
+        return f"the package's spec does not load: {exc.lines()[0]}"
+    if loaded.output_dir != (work / safe_relpath(info["output"])).resolve():
+        return "the spec's output folder is not the one replication.json names"
+    if not loaded.output_dir.is_relative_to(top):
+        return "the spec's output folder lies outside the package; refusing to run it"
+    for name in loaded.spec.data:
+        try:
+            path = resolve_path(loaded, name)
+        except SpecflowError as exc:
+            return exc.lines()[0]
+        if not path.is_relative_to(top):
+            return f"dataset '{name}' lies outside the package; refusing to run it"
+    return ""
 
 
 def _manifest(root: Path) -> ManifestCheck:

@@ -123,6 +123,31 @@ def test_data_that_is_not_included_is_checked_once_obtained(package, tmp_path):
     assert not rep.ok and rep.manifest.changed[0][0] == "specs/data/farms.csv"
 
 
+def test_a_spec_that_would_write_outside_is_not_run(package, tmp_path):
+    import json
+    import re
+
+    from specflow.replicate import MANIFEST_NAME, build_manifest
+
+    p = _copy(package, tmp_path / "deposit")
+    spec = p / "specs/canal_yields.toml"
+    spec.write_text(re.sub(r'(?m)^output = ".*"$', 'output = "../../escaped"', spec.read_text()))
+    info = json.loads((p / "replication.json").read_text())
+    info["output"] = "../escaped"  # replication.json must not point outside either
+    (p / "replication.json").write_text(json.dumps(info))
+    (p / MANIFEST_NAME).write_text(build_manifest(p).text())  # a consistent, hostile package
+    with pytest.raises(ReplicationError, match="'..' would leave the folder"):
+        verify(p)
+    info["output"] = "results/canal_yields"
+    (p / "replication.json").write_text(json.dumps(info))
+    (p / MANIFEST_NAME).write_text(build_manifest(p).text())
+    rep = verify(p, keep=True)
+    assert rep.classification == "failed" and rep.run_exit is None
+    assert "output folder" in rep.problem
+    assert not (tmp_path / "escaped").exists() and not (rep.scratch.parent / "escaped").exists()
+    shutil.rmtree(rep.scratch)
+
+
 def test_zip_of_the_package_checks_out(package, tmp_path, capsys):
     code = main(["verify", str(package.zip_path), "--manifest-only"])
     text = capsys.readouterr().out
