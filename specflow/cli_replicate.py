@@ -114,7 +114,8 @@ def register(sub) -> None:
                    help="flag estimates that moved by more than F old standard errors (default 0.5)")
     c.add_argument("--alpha", type=_positive, default=0.05,
                    help="flag p-values that crossed this level (default 0.05)")
-    c.add_argument("--weak-f", type=_positive, default=10.0, metavar="F",
-                   help="flag effective F statistics that crossed F (default 10)")
+    c.add_argument("--weak-f", type=_positive, default=None, metavar="F",
+                   help="flag effective F statistics that crossed F (default: each one's critical "
+                        "value for a 10%% worst-case bias, or 10 where the file has none)")
     c.add_argument("--all-terms", action="store_true", help="compare the controls' rows too")
     c.set_defaults(func=cmd_diff)

@@ -14,8 +14,10 @@ Which change is flagged (every one is listed):
 * ``sign``: the estimate changed sign;
 * ``significance``: the p-value crossed the level ``--alpha`` (default 0.05) in either
   direction;
-* ``weak IV``: the effective F (or, where the file has none, the first-stage F) crossed
-  ``--weak-f`` (default 10, the rule of thumb of Staiger and Stock (1997) (common practice));
+* ``weak IV``: the effective F crossed its Montiel Olea-Pflueger critical value for a 10%
+  worst-case bias (column ``effective_f_crit10``, each run's own), or ``--weak-f`` when given;
+  where the file has neither, 10, the rule of thumb of Staiger and Stock (1997) (common
+  practice), applied to the effective or the first-stage F;
 * ``status``: the specification's fit status changed (ok <-> failed).
 """
 
@@ -195,6 +197,7 @@ def _prune(out_dir: Path, keep: int) -> list[int]:
 
 KEY = ("spec_id", "term")
 AXIS_PREFIX = "axis_"
+WEAK_F_RULE = 10.0  # Staiger and Stock (1997) rule of thumb (common practice)
 # free text that follows the numbers or the code's wording, not the estimates
 TEXT_IGNORED = {"warnings", "not_applicable", "ci_robust_text"}
 NON_LABEL = {"spec_id", "term", "estimator", "covariance", "status", "reason", "dataset",
@@ -337,7 +340,7 @@ def _labels(row, label_cols: list[str]) -> str:
 
 
 def diff_estimates(old_path: Path, new_path: Path, *, old_label: str = "old", new_label: str = "new",
-                   se_fraction: float = 0.5, alpha: float = 0.05, weak_f: float = 10.0,
+                   se_fraction: float = 0.5, alpha: float = 0.05, weak_f: float | None = None,
                    rtol: float = 1e-8, atol: float = 1e-12, all_terms: bool = False) -> DiffResult:
     """Compare two estimates files row by row (key: spec_id and term).
 
@@ -365,6 +368,11 @@ def diff_estimates(old_path: Path, new_path: Path, *, old_label: str = "old", ne
     p_c = _first(cols, "p", "pvalue", "p_value")
     n_c = _first(cols, "nobs", "n")
     f_c = _first(cols, "effective_f", "first_stage_f", "first_stage_f_robust")
+    crit_c = _first(cols, "effective_f_crit10") if f_c == "effective_f" else None
+    if weak_f is None and crit_c:
+        threshold_text = "its critical value for a 10% worst-case bias"
+    else:
+        threshold_text = f"{weak_f if weak_f is not None else WEAK_F_RULE:g}"
 
     o = old.set_index(list(KEY))
     n = new.set_index(list(KEY))
@@ -389,8 +397,13 @@ def diff_estimates(old_path: Path, new_path: Path, *, old_label: str = "old", ne
         if op is not None and np_ is not None and (op < alpha) != (np_ < alpha):
             flags.append(f"significance at {alpha:g}")
         of, nf = g(a, f_c), g(b, f_c)
-        if of is not None and nf is not None and (of >= weak_f) != (nf >= weak_f):
-            flags.append(f"weak IV ({f_c} crossed {weak_f:g})")
+        if weak_f is None and crit_c:  # each run's own critical value
+            oc, nc = g(a, crit_c), g(b, crit_c)
+        else:
+            oc = nc = weak_f if weak_f is not None else WEAK_F_RULE
+        if None not in (of, nf, oc, nc) and (of >= oc) != (nf >= nc):
+            flags.append(f"weak IV ({f_c} {'fell below' if nf < nc else 'rose above'} "
+                         f"{threshold_text})")
         if "status" in textual and str(a["status"]) != str(b["status"]):
             flags.append(f"status {a['status']} -> {b['status']}")
         row = {**b.to_dict()}
@@ -409,7 +422,7 @@ def diff_estimates(old_path: Path, new_path: Path, *, old_label: str = "old", ne
     return DiffResult(
         old_label=old_label, new_label=new_label, compared=len(both), changes=changes,
         only_old=only(o.index, o, n), only_new=only(n.index, n, o),
-        settings={"se_fraction": se_fraction, "alpha": alpha, "weak_f": weak_f,
+        settings={"se_fraction": se_fraction, "alpha": alpha, "weak_f_text": threshold_text,
                   "weak_f_column": f_c, "rtol": rtol, "atol": atol},
     )
 
@@ -450,7 +463,7 @@ def _intro(res: DiffResult) -> list[str]:
         f"{res.old_label} -> {res.new_label}: {res.compared} (specification, term) rows in both; "
         f"{len(res.changes)} changed in {len(res.changed_spec_ids)} specification(s), {flagged} flagged",
         f"flags: moved more than {s['se_fraction']:g} of the old SE; sign change; p crossed "
-        f"{s['alpha']:g}; {s['weak_f_column'] or 'first-stage F'} crossed {s['weak_f']:g}; status change",
+        f"{s['alpha']:g}; {s['weak_f_column'] or 'first-stage F'} crossed {s['weak_f_text']}; status change",
     ]
     return lines
 

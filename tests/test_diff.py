@@ -139,13 +139,23 @@ def test_flags_on_invented_estimates(tmp_path):
     assert flags["s2"] == ["moved > 0.5 SE"]
     assert flags["s3"] == ["moved > 0.5 SE", "sign"]
     assert flags["s4"] == ["significance at 0.05"]
-    assert flags["s5"] == ["weak IV (effective_f crossed 10)"]
+    assert flags["s5"] == ["weak IV (effective_f fell below 10)"]
     assert [x[0] for x in res.only_old] == ["s7"] and [x[0] for x in res.only_new] == ["s8"]
     assert {c.spec_id: c.columns for c in res.changes}["s2"] == ["estimate", "N"]
     assert "s6" in diff_estimates(tmp_path / "old.csv", tmp_path / "new.csv", all_terms=True).changed_spec_ids
     # a stricter threshold: s1 (0.2 SE) is flagged at 0.1
     strict = diff_estimates(tmp_path / "old.csv", tmp_path / "new.csv", se_fraction=0.1)
     assert {c.spec_id: c.flags for c in strict.changes}["s1"] == ["moved > 0.1 SE"]
+    # with each row's own critical value (the collator's effective_f_crit10): 12 -> 8 against
+    # a critical value of 7 crosses nothing; s1's 30 -> 30 against 23 -> 31 does
+    for rows, crit in ((old, [23.0, 7, 7, 7, 7, 7, 7, 7]), (new, [31.0, 7, 7, 7, 7, 7, 7, 7])):
+        for r, c in zip(rows, crit):
+            r["effective_f_crit10"] = c
+    pd.DataFrame(old).to_csv(tmp_path / "old.csv", index=False)
+    pd.DataFrame(new).to_csv(tmp_path / "new.csv", index=False)
+    own = {c.spec_id: c.flags for c in diff_estimates(tmp_path / "old.csv", tmp_path / "new.csv").changes}
+    assert own["s5"] == []
+    assert own["s1"] == ["weak IV (effective_f fell below its critical value for a 10% worst-case bias)"]
     # Markdown: a GitHub pipe table with one body row per change (parsed by markdown-it-py)
     from markdown_it import MarkdownIt
 
