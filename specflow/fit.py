@@ -186,10 +186,10 @@ class SampleCache:
             ok &= has
             lost = int((mask & ~has).sum())
             if lost == n_filtered:
-                raise FitFailure(f"column '{name}' ({role}) has no usable values in the sample "
-                                 "(all missing or infinite" +
-                                 (f" after the {sp.outcome_transform} transform)" if role == "outcome"
-                                  and sp.outcome_transform != "none" else ")"))
+                after = (f" after the {sp.outcome_transform} transform"
+                         if role == "outcome" and sp.outcome_transform != "none" else "")
+                raise FitFailure(f"column '{name}' ({role}) is missing or infinite in every row of "
+                                 f"the sample{after}: no rows left")
             if lost:
                 missing_by.setdefault(name, lost)
         warnings: list[str] = []
