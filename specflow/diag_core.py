@@ -1,10 +1,12 @@
 """The shared, precomputed pieces of every diagnostic (see :mod:`specflow.diagnostics`).
 
 :class:`Core` is built once per specification from the :class:`~specflow.diagnostics.Design`
-and holds the projections and cross-products the individual statistics reuse: the QR
-factors of the excluded instruments, the reduced-form and first-stage residuals, the 2SLS
-estimate and, for robust, cluster and HAC covariances, one stacked "meat" of the
-reduced-form scores from which every robust Wald statistic on the reduced form is read.
+and holds what the individual statistics reuse: the Gram matrix of ``[y, X, Z]`` and a
+Cholesky factor of ``Z'Z`` (every homoskedastic statistic is a function of these small
+matrices), the 2SLS estimate and, for robust, cluster and HAC covariances, one stacked meat of
+all the score series the robust statistics need (one pass over the data; each robust Wald
+statistic reads its block). The numerical-trouble policy is here too: a statistic that cannot
+be computed raises :class:`Unavailable` and becomes a "not applicable" record.
 
 Conventions (those of :mod:`specflow.kernels`, so that the diagnostics agree with the fit):
 
@@ -21,7 +23,7 @@ Conventions (those of :mod:`specflow.kernels`, so that the diagnostics agree wit
 from __future__ import annotations
 
 from functools import cached_property
-from typing import TYPE_CHECKING, Callable
+from typing import TYPE_CHECKING, Callable, TypeVar
 
 import numpy as np
 from scipy import special, stats
@@ -32,6 +34,8 @@ from .results import Diagnostic
 if TYPE_CHECKING:  # pragma: no cover
     from .diagnostics import Design
 
+T = TypeVar("T")
+
 # Errors that mean "this statistic cannot be computed here"; anything else is a bug.
 NUMERICAL_ERRORS = (ArithmeticError, ValueError, np.linalg.LinAlgError)
 
@@ -40,15 +44,21 @@ class Unavailable(Exception):
     """Raised inside a diagnostic when it does not apply or cannot be computed."""
 
 
-def guard(name: str, covariance: str | None, fn: Callable[[], Diagnostic]) -> Diagnostic:
-    """Run ``fn``; numerical trouble becomes ``Diagnostic.not_applicable(name, reason)``."""
+def attempt(fn: Callable[[], T]) -> tuple[T | None, str | None]:
+    """Run ``fn``: ``(result, None)``, or ``(None, reason)`` if it does not apply or fails numerically."""
     try:
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            return fn()
+            return fn(), None
     except Unavailable as exc:
-        return Diagnostic.not_applicable(name, str(exc), covariance)
+        return None, str(exc)
     except NUMERICAL_ERRORS as exc:
-        return Diagnostic.not_applicable(name, f"numerical problem: {exc}", covariance)
+        return None, f"numerical problem: {exc}"
+
+
+def guard(name: str, covariance: str | None, fn: Callable[[], Diagnostic]) -> Diagnostic:
+    """Run ``fn``; numerical trouble becomes ``Diagnostic.not_applicable(name, reason)``."""
+    out, reason = attempt(fn)
+    return out if out is not None else Diagnostic.not_applicable(name, reason or "not computed", covariance)
 
 
 def finite(x: float, what: str) -> float:

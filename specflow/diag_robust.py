@@ -14,7 +14,7 @@ from functools import lru_cache
 import numpy as np
 from scipy import linalg, optimize, special, stats
 
-from .diag_core import Core, Unavailable, chi2_sf, f_sf, finite, well_conditioned
+from .diag_core import Core, Unavailable, f_sf, finite, well_conditioned
 from .results import ConfidenceSet, Diagnostic
 
 
@@ -129,7 +129,8 @@ def ar_set(c: Core, crit: float | None = None) -> ConfidenceSet:
     References
     ----------
     Anderson and Rubin (1949); Dufour, J.-M. (1997), Econometrica 65(6), 1365-1387 (unbounded sets);
-    Mikusheva, A. (2010), Journal of Econometrics 156(1), 106-124 (inversion by quadratics).
+    Mikusheva, A. (2010), "Robust Confidence Sets in the Presence of Weak Instruments", Journal of
+    Econometrics (inversion by quadratic inequalities).
 
     Notes
     -----
@@ -292,8 +293,10 @@ def tf(c: Core, first_stage: Diagnostic) -> tuple[Diagnostic, ConfidenceSet]:
 
     Notes
     -----
-    Defined for the just-identified 2SLS estimator (computed here) and its SE with the
-    specification's covariance; c(F) from :func:`tf_critical_value`.
+    Defined for the just-identified 2SLS estimator (computed here; LIML and GMM coincide with it
+    when L = 1, Fuller does not) and its SE with the specification's covariance. The record's
+    ``statistic`` is the critical value c(F) (None when infinite); ``extra`` holds the t ratio
+    for beta = 0, the SE, the adjusted SE ``se * c(F) / z`` and the decision.
     """
     if c.p != 1 or c.L != 1:
         raise Unavailable("tF is defined for one endogenous regressor and one instrument")
@@ -306,18 +309,21 @@ def tf(c: Core, first_stage: Diagnostic) -> tuple[Diagnostic, ConfidenceSet]:
     cval = tf_critical_value(float(first_stage_F), c.alpha)
     z = float(stats.norm.ppf(1 - c.alpha / 2))
     t = b / se
-    extra = {"critical_value": cval if np.isfinite(cval) else None, "first_stage_f": float(first_stage_F),
-             "se": se, "adjusted_se": se * cval / z if np.isfinite(cval) else None,
-             "reject": bool(np.isfinite(cval) and abs(t) > cval), "estimate": b}
-    if np.isfinite(cval):
+    finite_c = bool(np.isfinite(cval))
+    extra = {"critical_value": cval if finite_c else None, "first_stage_f": float(first_stage_F),
+             "t": t, "se": se, "adjusted_se": se * cval / z if finite_c else None,
+             "reject": bool(finite_c and abs(t) > cval), "estimate": b}
+    if c.d.estimator == "fuller":
+        extra["estimator_note"] = "tF uses the 2SLS estimate; the Fuller estimate of the fit differs"
+    if finite_c:
         cs = ConfidenceSet(method="tF", term=c.names[0], level=c.level, kind="interval",
                            pieces=[(b - cval * se, b + cval * se)], covariance=c.cov)
     else:
         extra["note"] = f"first-stage F <= {z * z:.4f}: the tF set is unbounded"
         cs = ConfidenceSet(method="tF", term=c.names[0], level=c.level, kind="whole-line", pieces=[],
                            covariance=c.cov, note=extra["note"])
-    d = Diagnostic(name="tf", statistic=t, covariance=c.cov, null=f"the coefficient of {c.names[0]} is 0",
-                   extra=extra)
+    d = Diagnostic(name="tf", statistic=cval if finite_c else None, covariance=c.cov,
+                   null=f"the coefficient of {c.names[0]} is 0 (reject when |t| > statistic)", extra=extra)
     return d, cs
 
 
@@ -377,7 +383,9 @@ def clr_test(c: Core, beta0: float = 0.0) -> Diagnostic:
     References
     ----------
     Moreira, M. J. (2003), "A Conditional Likelihood Ratio Test for Structural Models",
-    Econometrica 71(4), 1027-1048; Andrews, Moreira and Stock (2007), J. Econometrics 139, 1-33.
+    Econometrica 71(4), 1027-1048; Andrews, D. W. K., Moreira, M. J. and Stock, J. H. (2007),
+    "Performance of Conditional Wald Tests in IV Regression with Weak Instruments", Journal of
+    Econometrics 139(1), 116-132 (the closed form of the conditional p-value).
 
     Notes
     -----

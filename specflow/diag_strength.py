@@ -74,7 +74,7 @@ def first_stage_f_robust(c: Core, j: int) -> Diagnostic:
     if not c.robust:
         out = first_stage_f(c, j)
         out.name = f"first_stage_f_robust:{name}"
-        out.extra = {"note": "unadjusted covariance: identical to the conventional F"}
+        out.extra = {"note": "Wald/L; under unadjusted covariance identical to the conventional F"}
         return out
     e = np.zeros(c.p + 1)
     e[j + 1] = 1.0

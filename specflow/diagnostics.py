@@ -36,7 +36,7 @@ import numpy as np
 from . import diag_robust as rob
 from . import diag_strength as st
 from . import diag_validity as val
-from .diag_core import Core, guard
+from .diag_core import Core, attempt, guard
 from .kernels import Clusters
 from .results import ConfidenceSet, Diagnostic
 
@@ -84,7 +84,9 @@ def diagnose(design: Design) -> tuple[dict[str, Diagnostic], list[ConfidenceSet]
 
     Returns ``(diagnostics, confidence_sets)``; see the module docstring for the keys. A
     diagnostic that does not apply (wrong number of regressors or instruments, a singular
-    covariance, too few clusters, ...) is present with ``applicable=False`` and a reason.
+    covariance, too few clusters, ...) is present with ``applicable=False`` and a reason; a
+    confidence set that cannot be computed is left out and the reason is recorded in the
+    ``set_note`` of its test (``ar_test``, ``clr_test``).
     """
     c = Core(design)
     cov = design.covariance
@@ -99,6 +101,12 @@ def diagnose(design: Design) -> tuple[dict[str, Diagnostic], list[ConfidenceSet]
         out[name] = guard(name, cov, fn)
         return out[name]
 
+    def put_many(names: list[str], fn) -> None:
+        """``fn`` returns several records at once; if it fails they all carry its reason."""
+        res, reason = attempt(fn)
+        for nm in names:
+            out[nm] = res[nm] if res is not None else Diagnostic.not_applicable(nm, reason or "", cov)
+
     for j, x in enumerate(c.names):
         put(f"first_stage_f:{x}", lambda j=j: st.first_stage_f(c, j))
         put(f"first_stage_f_robust:{x}", lambda j=j: st.first_stage_f_robust(c, j))
@@ -106,36 +114,26 @@ def diagnose(design: Design) -> tuple[dict[str, Diagnostic], list[ConfidenceSet]
         put(f"shea_r2:{x}", lambda j=j: st.shea_r2(c, j))
         put(f"sw_f:{x}", lambda j=j: st.sanderson_windmeijer(c, j))
     cd = put("cragg_donald_f", lambda: st.cragg_donald(c))
-    kp = guard("kp_rk_lm", cov, lambda: _pair(st.kleibergen_paap(c)))
-    if isinstance(kp, Diagnostic):  # failed: the same reason for both
-        out["kp_rk_lm"] = kp
-        out["kp_rk_wald_f"] = Diagnostic.not_applicable("kp_rk_wald_f", kp.reason or "", cov)
-    else:
-        out["kp_rk_lm"], out["kp_rk_wald_f"] = kp.items
+    put_many(["kp_rk_lm", "kp_rk_wald_f"], lambda: dict(zip(["kp_rk_lm", "kp_rk_wald_f"], st.kleibergen_paap(c))))
     put("effective_f", lambda: st.effective_f(c))
     put("stock_yogo", lambda: st.stock_yogo(c, cd))
 
     put("ar_test", lambda: rob.ar_test(c))
-    _set(sets, cov, lambda: rob.ar_set(c))
+    _add_set(sets, out["ar_test"], c.p == 1, lambda: rob.ar_set(c))
     fs = out[f"first_stage_f_robust:{c.names[0]}"]
-    tf = guard("tf", cov, lambda: _pair(rob.tf(c, fs)))
-    if isinstance(tf, Diagnostic):
-        out["tf"] = tf
+    tf, reason = attempt(lambda: rob.tf(c, fs))
+    if tf is None:
+        out["tf"] = Diagnostic.not_applicable("tf", reason or "", cov)
     else:
-        out["tf"], tf_set = tf.items
-        sets.append(tf_set)
+        out["tf"] = tf[0]
+        sets.append(tf[1])
     put("clr_test", lambda: rob.clr_test(c))
-    _set(sets, cov, lambda: rob.clr_set(c))
+    _add_set(sets, out["clr_test"], c.p == 1, lambda: rob.clr_set(c))
 
     put("sargan", lambda: val.sargan(c))
     put("basmann", lambda: val.basmann(c))
     put("hansen_j", lambda: val.hansen_j(c))
-    cs = guard("c_stat", cov, lambda: _pair(val.c_stats(c)))
-    if isinstance(cs, Diagnostic):
-        for z in c.instr_names:
-            out[f"c_stat:{z}"] = Diagnostic.not_applicable(f"c_stat:{z}", cs.reason or "", cov)
-    else:
-        out.update(cs.items)
+    put_many([f"c_stat:{z}" for z in c.instr_names], lambda: val.c_stats(c))
     put("durbin", lambda: val.durbin(c))
     put("wu_hausman", lambda: val.wu_hausman(c))
     put("control_function", lambda: val.control_function(c))
@@ -143,17 +141,12 @@ def diagnose(design: Design) -> tuple[dict[str, Diagnostic], list[ConfidenceSet]
     return out, sets
 
 
-class _pair:
-    """Carrier so that :func:`guard` can wrap functions returning several records."""
-
-    applicable = True
-
-    def __init__(self, items):
-        self.items = items
-
-
-def _set(sets: list[ConfidenceSet], cov: str, fn) -> None:
-    """Append the set ``fn()`` returns; a set that cannot be computed is simply not reported."""
-    res = guard("set", cov, lambda: _pair(fn()))
-    if not isinstance(res, Diagnostic):
-        sets.append(res.items)
+def _add_set(sets: list[ConfidenceSet], test: Diagnostic, wanted: bool, fn) -> None:
+    """Append the set ``fn()`` returns; if it cannot be computed, say why in its test's extra."""
+    if not wanted:
+        return
+    cs, reason = attempt(fn)
+    if cs is not None:
+        sets.append(cs)
+    elif test.applicable:
+        test.extra["set_note"] = f"no confidence set: {reason}"

@@ -164,6 +164,8 @@ def test_iv_se_and_tf_set_against_linearmodels(cov):
     _close(tf.extra["estimate"], b)
     _close(tf.extra["se"], se)
     cval = tf.extra["critical_value"]
+    assert tf.statistic == cval  # the record's statistic is the tF critical value c(F)
+    _close(tf.extra["t"], b / se)
     tfs = next(cs for cs in sets if cs.method == "tF")
     assert tfs.kind == "interval"
     _close(tfs.pieces[0][0], b - cval * se)
@@ -569,7 +571,7 @@ def test_tf_set_unbounded_when_first_stage_weak():
     assert D["first_stage_f_robust:x1"].statistic < 3.8416
     tfs = next(cs for cs in sets if cs.method == "tF")
     assert tfs.kind == "whole-line" and tfs.pieces == [] and "unbounded" in tfs.note
-    assert D["tf"].extra["critical_value"] is None
+    assert D["tf"].extra["critical_value"] is None and D["tf"].statistic is None and D["tf"].applicable
     s3 = _sim(n=200, L=3, seed=1)
     D3, sets3 = diagnose(_design(s3["y"], s3["X"], s3["Z"], s3["W"]))
     assert not D3["tf"].applicable and "one instrument" in D3["tf"].reason
