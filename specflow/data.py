@@ -93,8 +93,22 @@ def read_dataset(loaded: LoadedSpec, name: str, check_sha: bool = True) -> tuple
     except DataError as exc:
         msg = str(exc).removeprefix(f"{path}: ")
         raise SpecError([loaded.problem(where, f"data file '{_shown(ds.path)}': {msg}")]) from None
+    dups = _duplicate_header(path) if ds.file_format() == "csv" else []
+    if dups:
+        raise SpecError([loaded.problem(where, f"data file '{_shown(ds.path)}' has more than one "
+                                               f"column named {', '.join(repr(d) for d in dups)}")])
     df.columns = [str(c) for c in df.columns]
     return df, digest
+
+
+def _duplicate_header(path: Path) -> list[str]:
+    """Names repeated in a CSV file's header (pandas would silently rename them 'name.1')."""
+    import csv
+
+    with open(path, newline="", encoding="utf-8", errors="replace") as f:
+        header = next(csv.reader(f), [])
+    seen: set[str] = set()
+    return list(dict.fromkeys(c for c in header if c in seen or seen.add(c)))
 
 
 def derive_and_filter(loaded: LoadedSpec, name: str, df: pd.DataFrame) -> pd.DataFrame:
