@@ -63,8 +63,9 @@ def group_sum(scores: np.ndarray, codes: np.ndarray, n_groups: int | None = None
     """Sum the rows of ``scores`` (n, m) within groups: returns (G, m)."""
     if n_groups is None:
         n_groups = int(codes.max()) + 1
-    out = np.zeros((n_groups, scores.shape[1]))
-    np.add.at(out, codes, scores)
+    out = np.empty((n_groups, scores.shape[1]))
+    for j in range(scores.shape[1]):  # bincount is several times faster than np.add.at
+        out[:, j] = np.bincount(codes, weights=scores[:, j], minlength=n_groups)
     return out
 
 
