@@ -366,7 +366,7 @@ class Progress:
         done, failed = self.counts()
         elapsed = time.monotonic() - self.t0
         left = "estimating time left"
-        if 0 < done < self.to_check:
+        if max(2, self.to_check // 20) <= done < self.to_check:
             left = f"about {_clock(elapsed / done * (self.to_check - done))} left"
         elif done >= self.to_check:
             left = "collating"
@@ -383,9 +383,7 @@ class Progress:
         seconds), and at least every thirty seconds."""
         text, counts = self.line(), self.counts()
         if self._live is not None:
-            from rich.text import Text
-
-            self._live.update(Text(text))
+            self._live.update(self._task, completed=self.unchanged + counts[0], description=text)
             return
         now = time.monotonic()
         moved = counts != self._last_line and now - self._last_print >= 2.0
@@ -396,11 +394,13 @@ class Progress:
     def __enter__(self):
         if self.tty:
             from rich.console import Console
-            from rich.live import Live
-            from rich.text import Text
+            from rich.progress import BarColumn, Progress as Bar, TextColumn
 
-            self._live = Live(Text(self.line()), console=Console(file=self.stream),
-                              refresh_per_second=4, transient=True)
+            self._live = Bar(BarColumn(bar_width=24), TextColumn("{task.description}"),
+                             console=Console(file=self.stream), refresh_per_second=4,
+                             transient=True)
+            self._task = self._live.add_task(self.line(), total=max(1, self.total),
+                                             completed=self.unchanged)
             self._live.__enter__()
         else:
             self.draw(final=True)

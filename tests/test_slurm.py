@@ -253,7 +253,8 @@ def same(a, b, path="") -> None:
 
 
 def test_cluster_runs_a_job(cluster):
-    job = subprocess.run(["sbatch", "--parsable", "--wrap", "true"], capture_output=True,
+    job = subprocess.run(["sbatch", "--parsable", f"--output={cluster}/log/smoke-%j.out",
+                          "--wrap", "true"], capture_output=True,
                          text=True, check=True).stdout.strip().split(";")[0]
     state = wait_for(lambda: _state(job) in ("COMPLETED", "FAILED") and _state(job), 60,
                      "smoke job")
