@@ -483,6 +483,8 @@ def parse_toml(text: str, file: str = "spec") -> dict:
 
 
 MAX_SPEC_BYTES = 2_000_000
+MAX_COMBINATIONS = 1_000_000  # axis combinations enumerated before the grid rules
+MAX_RULE_CHECKS = 20_000_000  # combinations x grid rules
 
 
 def load_spec(path: str | Path) -> LoadedSpec:
@@ -664,6 +666,17 @@ def semantic_problems(loaded: LoadedSpec) -> list[Problem]:
                                   f"baseline's values ({', '.join(patch.changes())})"))
             check_data_ref(ppath + ("data",), patch.data)
         labels_by_axis[aname] = labels
+    # the grid is enumerated combination by combination before its rules apply: bound the work
+    combos = 1
+    for axis in s.axes.values():
+        combos *= 1 + len(axis.variants)
+    n_rules = len(s.grid.exclude) + len(s.grid.only)
+    if combos > MAX_COMBINATIONS:
+        problems.append(P(("axes",), f"the axes make {combos:,} combinations before the grid rules "
+                          f"(at most {MAX_COMBINATIONS:,}); use fewer axes or variants, or split the study"))
+    elif combos * max(n_rules, 1) > MAX_RULE_CHECKS:
+        problems.append(P(("grid",), f"{n_rules:,} grid rules over {combos:,} combinations are more "
+                          f"than specflow checks ({MAX_RULE_CHECKS:,}); use fewer rules"))
     for name, patch in s.extra.items():
         if not patch.changes():
             problems.append(P(("extra", name), f"one-off specification '{name}' changes nothing"))
