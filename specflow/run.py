@@ -574,7 +574,7 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     jobs = [j for j in pending.jobs if j["rule"] != "all"]
     batches = [j["wildcards"]["batch"] for j in jobs if j["rule"] == "fit"]
     if dry_run:
-        _print_plan(say, plan, jobs, batches)
+        _print_plan(say, plan, jobs, batches, force)
         return EXIT_OK
     if not jobs:
         say(f"nothing to do (Snakemake): {len(plan.specs)} specifications up to date; "
@@ -635,14 +635,16 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     return EXIT_OK
 
 
-def _print_plan(say, plan: Plan, jobs: list[dict], batches: list[str]) -> None:
+def _print_plan(say, plan: Plan, jobs: list[dict], batches: list[str], force: bool) -> None:
     if not jobs:
         say(f"dry run: nothing to do; {len(plan.specs)} specifications up to date in {plan.out_dir}")
         return
     n = sum(len(plan.batches[b]) for b in batches)
+    how = "all refitted, --force" if force else "unchanged results in them are reused, not refitted"
     say(f"dry run: {len(jobs)} job(s) would run; {n} of {len(plan.specs)} specifications are in "
-        "batches that would run (unchanged results in them are reused, not refitted)")
-    for j in jobs:
+        f"batches that would run ({how})")
+    order = {"prepare": 0, "fit": 1, "collate": 2}
+    for j in sorted(jobs, key=lambda j: (order.get(j["rule"], 3), sorted(j["wildcards"].items()))):
         what = " ".join(str(v) for v in j["wildcards"].values())
         say(f"  {j['rule']:<8} {what:<14} {j['reason']}")
 

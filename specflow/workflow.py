@@ -166,6 +166,12 @@ class Plan:
         canon = json.dumps(self.loaded.spec.model_dump(mode="json"), sort_keys=True)
         return hashlib.sha256(canon.encode()).hexdigest()[:16]
 
+    def pattern(self, names) -> str:
+        """A wildcard constraint matching exactly these names."""
+        import re
+
+        return "|".join(re.escape(n) for n in names) or "(?!)"
+
     def batch_files(self) -> list[str]:
         return [f"fits/{b}.json" for b in self.batches]
 
@@ -211,14 +217,22 @@ def fingerprint_path(out_dir: Path, dataset: str) -> Path:
     return out_dir / "data" / f"{dataset}.fingerprint"
 
 
-def compute_fingerprints(plan: Plan) -> dict[str, DataPrint]:
+def full_fingerprint(loaded: LoadedSpec, name: str, file_sha256: str) -> tuple[str, str]:
+    """(data fingerprint, fingerprint-file content) of a dataset whose file has this SHA-256."""
+    from .data import fingerprint
+
+    data_fp = fingerprint(loaded, name, file_sha256)
+    return data_fp, hashlib.sha256(f"{data_fp}\n{code_version('prepare')}".encode()).hexdigest()
+
+
+def compute_fingerprints(plan: Plan, only: list[str] | None = None) -> dict[str, DataPrint]:
     """Hash every dataset the grid uses (reads each data file once; no pandas needed)."""
-    from .data import fingerprint, resolve_path, sha256_file
+    from .data import resolve_path, sha256_file
 
     loaded = plan.loaded
     out: dict[str, DataPrint] = {}
     problems: list[Problem] = []
-    for name in plan.datasets:
+    for name in only or plan.datasets:
         ds = loaded.spec.data[name]
         path = resolve_path(loaded, name)
         if not path.is_file():
@@ -229,8 +243,7 @@ def compute_fingerprints(plan: Plan) -> dict[str, DataPrint]:
             problems.append(loaded.problem(("data", name, "sha256"),
                             f"checksum mismatch for '{ds.path}': the file's SHA-256 is {digest}"))
             continue
-        data_fp = fingerprint(loaded, name, digest)
-        full = hashlib.sha256(f"{data_fp}\n{code_version('prepare')}".encode()).hexdigest()
+        data_fp, full = full_fingerprint(loaded, name, digest)
         out[name] = DataPrint(name, str(path), digest, data_fp, full)
     if problems:
         raise SpecError(problems)
@@ -299,15 +312,21 @@ def _plan_for(spec_path: str | Path) -> Plan:
     return make_plan(load_spec(spec_path))
 
 
+def plan_from_config(config: dict) -> Plan:
+    """The Snakefile's plan: ``--config spec=PATH`` names the study's spec file."""
+    if not config.get("spec"):
+        raise RunError("say which study to run: --config spec=path/to/study.toml")
+    return _plan_for(Path(str(config["spec"])).resolve())
+
+
 def prepare_dataset(spec_path: str | Path, dataset: str, fingerprint_file: Path, out: Path) -> None:
     """Read, derive, filter and type-check one dataset and write it as Parquet."""
     from .data import prepare, write_parquet_atomic
 
     plan = _plan_for(spec_path)
     expected = read_fingerprint(fingerprint_file)
-    df, _ = prepare(plan.loaded, dataset)
-    now = compute_fingerprints(plan)[dataset].fingerprint
-    if now != expected:
+    df, digest = prepare(plan.loaded, dataset)  # the SHA-256 of the bytes it read
+    if full_fingerprint(plan.loaded, dataset, digest)[1] != expected:
         raise RunError(f"dataset '{dataset}' changed while the workflow ran; run it again")
     write_parquet_atomic(df, Path(out))
 

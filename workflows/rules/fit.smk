@@ -15,7 +15,7 @@ rule fit:
         digest=lambda wc: PLAN.members_digest(wc.batch),
         code=sf.code_version("fit"),
     wildcard_constraints:
-        batch="|".join(PLAN.batches) or "-",
+        batch=PLAN.pattern(PLAN.batches),
     threads: 1
     resources:
         mem_mb=4000,

@@ -11,7 +11,7 @@ rule prepare:
     params:
         code=sf.code_version("prepare"),
     wildcard_constraints:
-        dataset="|".join(PLAN.datasets) or "-",
+        dataset=PLAN.pattern(PLAN.datasets),
     threads: 1
     resources:
         mem_mb=4000,
