@@ -42,6 +42,15 @@ SAMPLES = {  # label -> extra filter (None: all rows)
     "x2 below 1": "x2 < 1",
 }
 
+# the same filters as numpy masks, for the baselines
+SAMPLE_MASKS = {
+    "all": lambda a: np.ones(a["y"].shape[0], dtype=bool),
+    "not region 1": lambda a: a["region"] != 1,
+    "not region 2": lambda a: a["region"] != 2,
+    "x1 above -1": lambda a: a["x1"] > -1,
+    "x2 below 1": lambda a: a["x2"] < 1,
+}
+
 
 def grid_frame(n: int, seed: int = 7) -> pd.DataFrame:
     """The grid scenario's data: see the module docstring."""
