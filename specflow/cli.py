@@ -43,6 +43,8 @@ def cmd_check(args) -> int:
     rows = {k: len(v) for k, v in frames.items()}
     data = ", ".join(f"{k} ({n} rows)" for k, n in rows.items())
     print(f"{loaded.path.name}: ok: {len(specs)} specifications over {len(loaded.spec.axes)} axes; data: {data}")
+    for dropped, kept in loaded.duplicates:
+        print(f"note: '{dropped}' is the same specification as '{kept}' and is fitted once")
     return EXIT_OK
 
 

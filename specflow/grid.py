@@ -173,6 +173,7 @@ def expand(loaded: LoadedSpec) -> list[Specification]:
     choices = [[(a.baseline, None)] + list(a.variants.items()) for _, a in axes]
     out: list[Specification] = []
     seen: dict[str, Specification] = {}
+    duplicates: list[tuple[str, str]] = []  # (dropped, the identical one kept)
     problems: list[Problem] = []
     count = 0
     for combo in itertools.product(*choices):
@@ -193,6 +194,7 @@ def expand(loaded: LoadedSpec) -> list[Specification]:
         is_base = all(p is None for _, p in combo)
         sp = _resolve(loaded, d, labels, None, is_base)
         if sp.id in seen:
+            duplicates.append((sp.label_text(), seen[sp.id].label_text()))
             continue
         seen[sp.id] = sp
         out.append(sp)
@@ -202,11 +204,13 @@ def expand(loaded: LoadedSpec) -> list[Specification]:
     for name, patch in s.extra.items():
         sp = _resolve(loaded, _apply(base, patch), dict(baseline_labels), name, False)
         if sp.id in seen:
+            duplicates.append((name, seen[sp.id].label_text()))
             continue
         seen[sp.id] = sp
         out.append(sp)
     if problems:
         raise SpecError(problems)
+    loaded.duplicates = duplicates
     return out
 
 

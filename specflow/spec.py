@@ -283,6 +283,7 @@ class LoadedSpec:
         self.text = text
         self._lines = lines
         self.shown = shown or str(path)  # the path as the user gave it, for messages
+        self.duplicates: list[tuple[str, str]] = []  # set by grid.expand: (dropped, kept)
 
     @property
     def folder(self) -> Path:

@@ -466,3 +466,13 @@ def test_patch_add_and_drop(tmp_path):
     assert by["drop_z1"].instruments == ("z2", "z3")
     assert by["filtered"].filters == ("c1 > 0",)
     assert by["no_w"].weights is None and by["no_w"].absorb == ("fe",)
+
+
+def test_duplicates_are_reported(tmp_path):
+    """The dropped duplicates are kept on the loaded spec, so `specflow check` can say so."""
+    extra = '\n[extra.same_as_liml]\nestimator = "liml"\n'
+    p = tmp_path / "s.toml"
+    p.write_text(SMALL + extra, encoding="utf-8")
+    loaded = load_spec(p)
+    expand(loaded)
+    assert loaded.duplicates == [("same_as_liml", "iv=both, ctrl=c1, est=liml")]
