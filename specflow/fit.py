@@ -26,6 +26,7 @@ Conventions (what a paper usually reports; linearmodels' defaults differ, see DE
 
 from __future__ import annotations
 
+import sys
 import time
 from dataclasses import dataclass, field
 
@@ -101,6 +102,11 @@ class SampleCache:
 
     def __init__(self, df: pd.DataFrame):
         self.df = df
+        # A frame just read from Parquet leaves Arrow's allocator holding its decoded buffers
+        # (about the frame's size again); hand them back before the fit allocates its own.
+        pa = sys.modules.get("pyarrow")
+        if pa is not None:
+            pa.default_memory_pool().release_unused()
         self._filters: dict[tuple, np.ndarray] = {}
         self._samples: dict[tuple, Sample] = {}
         self._by_sig: dict[tuple, Sample] = {}
@@ -244,8 +250,11 @@ class SampleCache:
         if sp.cluster:
             # Clusters.from_columns numbers each column's distinct values in sorted order; the
             # columns here are integer codes already, which recode() renumbers alike in O(n)
-            cc = recode([self._codes(c)[rows] for c in sp.cluster])
-            clusters = Clusters(np.column_stack([c for c, _ in cc]), tuple(g for _, g in cc))
+            # (a cluster variable that is also absorbed shares the effect's codes: the same numbers)
+            cc = [codes[sp.absorb.index(c)] if c in sp.absorb else recode([self._codes(c)[rows]])[0]
+                  for c in sp.cluster]
+            cmat = cc[0][0].reshape(-1, 1) if len(cc) == 1 else np.column_stack([c for c, _ in cc])
+            clusters = Clusters(cmat, tuple(g for _, g in cc))
         dfa = absorbed_df(codes)
         dfa_c = dfa
         if clusters is not None and codes:
