@@ -31,8 +31,8 @@ Batches
 -------
 The specifications of one dataset are spread over a fixed number of buckets by their id
 (a 12-hex content hash): bucket = int(id, 16) mod B. B is a power of two, enough for batches of
-about ``study.batch_size`` specifications (default :data:`AUTO_BATCH_SIZE`), so it only
-changes when the grid's size crosses a power of two. A batch is therefore stable: editing one
+at most ``study.batch_size`` specifications (:func:`bucket_count`), so it only changes when
+the grid's size crosses a power of two times the batch size. A batch is therefore stable: editing one
 variant changes only the ids it touches, and only the batches those old and new ids fall in
 rerun. Each fit rule carries its members (id and labels) and the fitting code's hash in its
 params, so Snakemake reruns a batch exactly when its membership, a label or the code changes.
@@ -58,7 +58,8 @@ from .errors import Problem, RunError, SpecError, SpecflowError
 from .grid import Specification, expand
 from .spec import LoadedSpec, load_spec
 
-AUTO_BATCH_SIZE = 100
+AUTO_BATCH_SIZE = 250  # chosen with benchmarks/bench_grid.py (2 cores, 1,000 x 50,000)
+AUTO_SPLIT_FROM = 100  # with the automatic size, grids this large get at least two batches
 MAX_BUCKETS = 256
 STORE_SCHEMA = 1
 PROGRESS_EVERY = 0.5  # seconds between progress-file updates of a fit job
@@ -113,8 +114,14 @@ def snakefile() -> Path:
 # the plan: datasets and batches
 
 
-def _bucket_count(n: int, size: int) -> int:
+def bucket_count(n: int, batch_size: int = 0) -> int:
+    """How many buckets a dataset's n specifications get: the power of two that makes batches
+    of at most ``batch_size`` (0: automatic, :data:`AUTO_BATCH_SIZE`, and at least two batches
+    from :data:`AUTO_SPLIT_FROM` specifications so that two cores have work)."""
+    size = batch_size or AUTO_BATCH_SIZE
     need = max(1, math.ceil(n / max(1, size)))
+    if not batch_size and n >= AUTO_SPLIT_FROM:
+        need = max(need, 2)
     return min(MAX_BUCKETS, 1 << (need - 1).bit_length())
 
 
@@ -179,7 +186,7 @@ class Plan:
 def make_plan(loaded: LoadedSpec, specs: list[Specification] | None = None) -> Plan:
     """Expand the grid and cut it into batches (see the module docstring)."""
     specs = expand(loaded) if specs is None else specs
-    size = loaded.spec.study.batch_size or AUTO_BATCH_SIZE
+    size = loaded.spec.study.batch_size
     by_ds: dict[str, list[Specification]] = {}
     for sp in specs:
         by_ds.setdefault(sp.dataset, []).append(sp)
@@ -188,7 +195,7 @@ def make_plan(loaded: LoadedSpec, specs: list[Specification] | None = None) -> P
     by_batch: dict[str, str] = {}
     for ds in sorted(by_ds):
         _check_name(loaded, ds)
-        b = _bucket_count(len(by_ds[ds]), size)
+        b = bucket_count(len(by_ds[ds]), size)
         buckets[ds] = b
         groups: dict[int, list[Specification]] = {}
         for sp in by_ds[ds]:

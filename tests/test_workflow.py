@@ -291,8 +291,9 @@ def test_batches_are_stable_when_the_grid_grows():
     loaded = load_spec(DEMO)
     specs = expand(loaded)
     plan = sf.make_plan(loaded, specs)
-    assert plan.buckets == {"farms": 1}  # 44 specifications, automatic size 100
-    assert [sf._bucket_count(n, 100) for n in (1, 100, 101, 250, 1000, 10**6)] == [1, 1, 2, 4, 16, 256]
+    assert plan.buckets == {"farms": 1}  # 44 specifications, automatic size
+    assert [sf.bucket_count(n, 100) for n in (1, 100, 101, 250, 1000, 10**6)] == [1, 1, 2, 4, 16, 256]
+    assert [sf.bucket_count(n) for n in (44, 99, 100, 500, 501, 1000, 5000)] == [1, 1, 2, 2, 4, 4, 32]
     where = {sp.id: sf.bucket_of(sp.id, 8) for sp in specs}
     fewer = {sp.id: sf.bucket_of(sp.id, 8) for sp in specs[:-1]}
     assert all(where[i] == b for i, b in fewer.items())
