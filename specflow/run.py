@@ -589,7 +589,7 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
             p.unlink(missing_ok=True)
     pid_file.parent.mkdir(parents=True, exist_ok=True)
     pid_file.write_text(f"{os.getpid()}\n")
-    with open(log_file, "a", encoding="utf-8") as f:
+    with open(log_file, "w", encoding="utf-8") as f:  # the log holds the last run
         f.write(f"\n=== specflow {__version__} run of {plan.spec_path} at "
                 f"{time.strftime('%Y-%m-%d %H:%M:%S')} ===\n")
     counts = _job_counts(jobs)

@@ -417,7 +417,10 @@ def fit_batch(spec_path: str | Path, batch: str, digest: str, data_file: Path,
     results: dict[str, FitResult] = {}
     for sp in members:
         if sp.id in pool:
-            r = FitResult.model_validate(pool[sp.id])
+            try:
+                r = FitResult.model_validate(pool[sp.id])
+            except ValueError:  # pydantic's ValidationError: an unreadable old record, refit
+                continue
             r.labels, r.extra_name = dict(sp.labels), sp.extra_name
             results[sp.id] = r
             progress.add("reused", failed=int(r.status == "failed"))
@@ -450,7 +453,7 @@ def fit_batch(spec_path: str | Path, batch: str, digest: str, data_file: Path,
              "results": [r.model_dump(mode="json") for r in ordered]}
     from .data import write_atomic_text
 
-    _write_json(store_dir / f"{batch}.json", store)
+    write_atomic_text(store_dir / f"{batch}.json", json.dumps(store, separators=(",", ":")))
     write_atomic_text(Path(out), text)
     progress.finish()
 
