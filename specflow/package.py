@@ -276,8 +276,8 @@ def wheel_members() -> list[tuple[str, Path]]:
     members = _tree_files(PACKAGE_DIR, "specflow")
     wf = workflow_folder()
     if not wf.resolve().is_relative_to(PACKAGE_DIR.resolve()):
-        # the workflow finds its Snakefile at <site-packages>/workflows/ (specflow.workflow.snakefile)
-        members += _tree_files(wf, os.path.relpath(wf, PACKAGE_DIR.parent).replace(os.sep, "/"))
+        # installed as specflow/workflows/, where specflow.workflow.snakefile looks first
+        members += _tree_files(wf, "specflow/workflows")
     return members
 
 

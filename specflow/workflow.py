@@ -107,7 +107,9 @@ def workflow_code_hash() -> str:
 
 
 def snakefile() -> Path:
-    return PACKAGE_DIR.parent / "workflows" / "Snakefile"
+    """The Snakefile: inside an installed package (specflow/workflows/), else the checkout's."""
+    installed = PACKAGE_DIR / "workflows" / "Snakefile"
+    return installed if installed.is_file() else PACKAGE_DIR.parent / "workflows" / "Snakefile"
 
 
 # ---------------------------------------------------------------------------------------------
