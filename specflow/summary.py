@@ -30,6 +30,52 @@ def _reg_block(reg: Regression, title: str) -> list[str]:
     return lines
 
 
+GROUPS = [
+    ("Instrument strength", ("first_stage_f", "partial_r2", "shea_r2", "sw_f", "cragg_donald_f",
+                             "kp_rk", "effective_f", "stock_yogo")),
+    ("Weak-instrument-robust tests", ("ar_test", "tf", "clr_test")),
+    ("Overidentification (tests of the instruments' mutual consistency, not of their exclusion)",
+     ("sargan", "basmann", "hansen_j", "c_stat")),
+    ("Endogeneity", ("durbin", "wu_hausman", "control_function")),
+]
+
+
+def _groups(diags: dict) -> list[tuple[str, list[str]]]:
+    out, used = [], set()
+    for title, prefixes in GROUPS:
+        keys = [k for k in diags if k.split(":")[0].startswith(prefixes) and k not in used]
+        used.update(keys)
+        if keys:
+            out.append((title, keys))
+    rest = [k for k in diags if k not in used]
+    if rest:
+        out.append(("Other", rest))
+    return out
+
+
+def _value(v) -> str:
+    if isinstance(v, float):
+        return _num(v)
+    if isinstance(v, (list, tuple)):
+        return ", ".join(_value(x) for x in v) or "none"
+    if isinstance(v, dict):
+        return "; ".join(f"{k} {_value(x)}" for k, x in v.items()) or "none"
+    return str(v)
+
+
+def _diag_lines(key: str, d, w: int) -> list[str]:
+    if not d.applicable:
+        return [f"  {key.ljust(w)}  not applicable: {d.reason}"]
+    pv = f"  p = {_num(d.pvalue, 4)}" if d.pvalue is not None else ""
+    dist = f"  ~ {d.distribution}" if d.distribution else ""
+    cov = f"  [{d.covariance}]" if d.covariance else ""
+    out = [f"  {key.ljust(w)}  {_num(d.statistic)}{dist}{pv}{cov}"]
+    for k, v in d.extra.items():
+        if k != "note" and v is not None:
+            out.append(f"  {''.ljust(w)}    {k}: {_value(v)}")
+    return out
+
+
 def describe_fit(sp: Specification, res: FitResult) -> str:
     lines = [f"specification {sp.id}: {sp.label_text()}",
              f"  estimator {sp.estimator}, covariance {sp.covariance}"
@@ -56,19 +102,11 @@ def describe_fit(sp: Specification, res: FitResult) -> str:
         for cs in res.confidence_sets:
             lines.append(f"  {cs.method:<15} {cs.term}: {cs.describe()}  ({cs.level:.0%}, {cs.covariance or ''})")
     if res.diagnostics:
-        lines += ["", "Diagnostics:"]
         w = max(len(k) for k in res.diagnostics)
-        for key, d in res.diagnostics.items():
-            if not d.applicable:
-                lines.append(f"  {key.ljust(w)}  not applicable: {d.reason}")
-                continue
-            pv = f"  p = {_num(d.pvalue, 4)}" if d.pvalue is not None else ""
-            dist = f"  ~ {d.distribution}" if d.distribution else ""
-            cov = f"  [{d.covariance}]" if d.covariance else ""
-            lines.append(f"  {key.ljust(w)}  {_num(d.statistic)}{dist}{pv}{cov}")
-            for k, v in d.extra.items():
-                if isinstance(v, (int, float, str, bool)) and k != "note":
-                    lines.append(f"  {''.ljust(w)}    {k}: {v if not isinstance(v, float) else _num(v)}")
+        for title, keys in _groups(res.diagnostics):
+            lines += ["", f"{title}:"]
+            for key in keys:
+                lines += _diag_lines(key, res.diagnostics[key], w)
     ef = res.diagnostics.get("effective_f")
     if ef is not None and ef.applicable and ef.extra.get("weak_tau10"):
         lines += ["", "WEAK INSTRUMENTS: the effective F is below its critical value for a 10% "
