@@ -63,6 +63,18 @@ print(json.dumps({"status": r.status, "reason": r.reason, "read_s": t1 - t0, "fi
                   "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
 """
 
+PREPARE_ALONE = r"""
+import json, resource, sys, time
+t0 = time.perf_counter()
+from specflow.data import prepare, write_parquet_atomic
+from specflow.spec import load_spec
+from pathlib import Path
+df, _ = prepare(load_spec(sys.argv[1]), "panel")
+write_parquet_atomic(df, Path(sys.argv[2]))
+print(json.dumps({"seconds": time.perf_counter() - t0,
+                  "peak_rss_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
+"""
+
 BASELINE = r"""
 import json, resource, sys, time
 import numpy as np, pandas as pd
@@ -140,6 +152,11 @@ def run(rows: int = 10_000_000, g1: int = 1_000_000, g2: int = 1000, cores: int 
     if r["rc"] != 0:
         fig["specflow_run_output"] = r["out"]
     fig["peak_over_data"] = r["peak_rss_mb"] / numeric_mb
+
+    p = subprocess.run([PY, "-c", PREPARE_ALONE, str(work / "study.toml"), str(work / "prepared.tmp.parquet")],
+                       capture_output=True, text=True)
+    fig["prepare_job_alone"] = _json_of(p.stdout) if p.returncode == 0 else {"error": p.stderr[-2000:]}
+    (work / "prepared.tmp.parquet").unlink(missing_ok=True)
 
     prepared = work / "results" / "data" / "panel.parquet"
     src = prepared if prepared.exists() else data

@@ -72,6 +72,11 @@ def table(cli: dict, grid: dict, hdfe: dict | None) -> list[tuple[str, str, str,
             rows.append(("HDFE: peak RSS of the fit job alone / numeric data",
                          f"{hdfe['fit_job_peak_over_data']:.2f}x", "",
                          f"{alone.get('peak_rss_mb', 0):.0f} MB"))
+        prep = hdfe.get("prepare_job_alone", {})
+        if "peak_rss_mb" in prep:
+            rows.append(("HDFE: peak RSS of the prepare job alone / numeric data",
+                         f"{prep['peak_rss_mb'] / hdfe['numeric_columns_mb']:.2f}x", "",
+                         f"{prep['peak_rss_mb']:.0f} MB, {prep['seconds']:.1f} s"))
         if "numpy_baseline" in hdfe and "seconds" in hdfe["numpy_baseline"]:
             rows.append(("HDFE: numpy baseline (AP demeaning + 2SLS)",
                          _fmt_s(hdfe["numpy_baseline"]["seconds"]), "",

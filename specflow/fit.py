@@ -299,6 +299,18 @@ class SampleCache:
             s._cols[key] = s.sw.copy() if s.sw is not None else np.ones(s.n)
         return s._cols[key]
 
+    def plan(self, specs: list[Specification]) -> None:
+        """Tell each sample which columns the coming specifications use (one _Design each).
+
+        Optional: without it a sample's design is extended (rebuilt) whenever a specification
+        needs a column it lacks. Samples that fail are reported by ``fit`` later.
+        """
+        for sp in specs:
+            try:
+                self.sample(sp)._want.update(_keys(sp))
+            except FitFailure:
+                pass
+
     def design(self, s: Sample, keys: list[tuple[str, str | None]]) -> "_Design":
         """The sample's :class:`_Design` over (at least) these columns, shared by the batch.
 
@@ -677,11 +689,7 @@ def fit(sp: Specification, df: pd.DataFrame, cache: SampleCache | None = None,
 def fit_many(specs: list[Specification], df: pd.DataFrame, diagnose: bool = True) -> list[FitResult]:
     """Fit specifications sharing one prepared dataset; samples and swept columns are shared."""
     cache = SampleCache(df)
-    for sp in specs:  # tell each sample which columns its specifications use: one _Design each
-        try:
-            cache.sample(sp)._want.update(_keys(sp))
-        except FitFailure:
-            pass  # reported by fit() below
+    cache.plan(specs)
     return [fit(sp, df, cache, diagnose) for sp in specs]
 
 
