@@ -29,7 +29,7 @@ from .results import Batch, FitResult
 from .spec import LoadedSpec
 from .tables import (
     NOT_RUN, TEST_NAMES, WEAK_MARK, Cell, TableData, build_table, diag, endogeneity_key, fmt_num,
-    fmt_p, overid_key, tables_of, weak_first_stage,
+    fmt_p, overid_key, set_pieces_text, tables_of, weak_first_stage,
 )
 
 # ---------------------------------------------------------------------------------------------
@@ -247,17 +247,9 @@ def _latex_mark(mark: str) -> str:
 
 
 def _latex_set(c: Cell) -> str:
-    cs = c.cset
-    if cs.kind == "whole-line":
-        return r"$(-\infty, \infty)$"
-    if cs.kind == "empty":
+    if c.cset.kind == "empty":
         return "empty"
-    parts = []
-    for lo, hi in cs.pieces:
-        a = r"(-\infty" if lo is None else "[" + fmt_num(lo, c.digits)
-        b = r"\infty)" if hi is None else fmt_num(hi, c.digits) + "]"
-        parts.append(f"{a}, {b}")
-    return "$" + r" \cup ".join(parts) + "$"
+    return "$" + set_pieces_text(c.cset, c.digits, r"\infty", r" \cup ") + "$"
 
 
 def latex_cell(c: Cell) -> str:

@@ -130,18 +130,23 @@ class ConfidenceSet(_Model):
     def _ser(self, v: list[tuple[float | None, float | None]]) -> list[list[float | None]]:
         return [[_clean(a), _clean(b)] for a, b in v]
 
-    def describe(self, fmt: str = "{:.3f}") -> str:
-        """Human text for the set: '[0.12, 0.40]', '(-inf, -1.2] U [0.3, inf)', 'whole line', 'empty'."""
+    def describe(self, fmt: Any = "{:.3f}", inf: str = "inf", cup: str = " U ") -> str:
+        """Text for the set: '[0.12, 0.40]', '(-inf, -1.2] U [0.3, inf)', '(-inf, inf)', 'empty'.
+
+        ``fmt`` is a format string or a function of one number; ``inf`` and ``cup`` are the
+        symbols for infinity and union (e.g. LaTeX's ``\\infty`` and ``\\cup``).
+        """
+        num = fmt.format if isinstance(fmt, str) else fmt
         if self.kind == "whole-line":
-            return "(-inf, inf)"
+            return f"(-{inf}, {inf})"
         if self.kind == "empty":
             return "empty"
         parts = []
         for lo, hi in self.pieces:
-            a = "(-inf" if lo is None else "[" + fmt.format(lo)
-            b = "inf)" if hi is None else fmt.format(hi) + "]"
+            a = f"(-{inf}" if lo is None else "[" + num(lo)
+            b = f"{inf})" if hi is None else num(hi) + "]"
             parts.append(f"{a}, {b}")
-        return " U ".join(parts)
+        return cup.join(parts)
 
 
 class FitResult(_Model):

@@ -77,16 +77,7 @@ def fmt_p(p: float) -> str:
 
 def set_pieces_text(cs: ConfidenceSet, digits: int, inf: str = "\u221e", cup: str = " \u222a ") -> str:
     """A confidence set as text: '[0.120, 0.400]', '(-inf, -1.200] U [0.300, inf)', ..."""
-    if cs.kind == "whole-line":
-        return f"(-{inf}, {inf})"
-    if cs.kind == "empty":
-        return "empty"
-    parts = []
-    for lo, hi in cs.pieces:
-        a = f"(-{inf}" if lo is None else "[" + fmt_num(lo, digits)
-        b = f"{inf})" if hi is None else fmt_num(hi, digits) + "]"
-        parts.append(f"{a}, {b}")
-    return cup.join(parts)
+    return cs.describe(lambda x: fmt_num(x, digits), inf, cup)
 
 
 def cell_text(c: Cell) -> str:
