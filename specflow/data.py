@@ -42,15 +42,22 @@ def resolve_path(loaded: LoadedSpec, name: str) -> Path:
     return p
 
 
-def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
+def sha256_and_size(path: Path, chunk: int = 1 << 20) -> tuple[str, int]:
+    """SHA-256 (hex) and size in bytes of a file, read in chunks."""
     h = hashlib.sha256()
+    size = 0
     with open(path, "rb") as f:
         while True:
             b = f.read(chunk)
             if not b:
                 break
             h.update(b)
-    return h.hexdigest()
+            size += len(b)
+    return h.hexdigest(), size
+
+
+def sha256_file(path: Path) -> str:
+    return sha256_and_size(path)[0]
 
 
 def read_table(path: Path, fmt: str, columns: list[str] | None = None) -> pd.DataFrame:

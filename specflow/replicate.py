@@ -22,7 +22,6 @@ who obtains them can check they hold the same bytes as the authors' copy.
 
 from __future__ import annotations
 
-import hashlib
 import os
 import platform
 import re
@@ -30,6 +29,7 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 
+from .data import sha256_and_size  # noqa: F401 - part of this module's interface
 from .errors import SpecflowError
 
 MANIFEST_NAME = "MANIFEST.sha256"
@@ -65,17 +65,6 @@ def runtime_bucket(seconds: float) -> str:
 # Files and the manifest
 
 
-def sha256_and_size(path: Path, chunk: int = 1 << 20) -> tuple[str, int]:
-    h = hashlib.sha256()
-    size = 0
-    with open(path, "rb") as f:
-        while True:
-            b = f.read(chunk)
-            if not b:
-                break
-            h.update(b)
-            size += len(b)
-    return h.hexdigest(), size
 
 
 def safe_relpath(name: str) -> PurePosixPath:
