@@ -32,8 +32,8 @@ from pathlib import Path
 
 from .errors import RunError, SpecflowError
 from .workflow import (
-    Plan, code_version, crash_note_path, make_plan, progress_path, refresh_fingerprints,
-    snakefile, workflow_code_hash,
+    Plan, check_data_unchanged, code_version, crash_note_path, make_plan, progress_path,
+    refresh_fingerprints, snakefile, workflow_code_hash,
 )
 
 EXIT_OK, EXIT_SOME_FAILED, EXIT_USER, EXIT_CRASH = 0, 1, 2, 3
@@ -430,24 +430,102 @@ def _job_counts(jobs: list[dict]) -> dict[str, int]:
     return counts
 
 
-def _lock_check(plan: Plan, pid_file: Path) -> bool:
-    """True if Snakemake's lock was left by a specflow run that no longer exists."""
-    locks = plan.out_dir / ".snakemake" / "locks"
-    if not (locks.is_dir() and any(locks.iterdir())):
-        return False
-    try:
-        pid = int(pid_file.read_text().strip())
-    except (OSError, ValueError):
-        return False  # a lock without our pid file: another Snakemake; let it report
+LOCK_FILE = Path("logs") / "run.pid"
+
+
+def _pid_alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
     except ProcessLookupError:
-        return True
+        return False
     except PermissionError:
-        pass
-    if pid != os.getpid():
-        raise RunError(f"another specflow run (pid {pid}) is using {plan.out_dir}")
-    return False
+        return True
+    return True
+
+
+def _read_pid(fd: int) -> int | None:
+    try:
+        return int(os.pread(fd, 32, 0).decode("ascii", "replace").strip())
+    except (OSError, ValueError):
+        return None
+
+
+def hold_output_folder(out_dir: Path) -> tuple[int, int | None]:
+    """Hold the output folder for this run: an exclusive lock on ``O/logs/run.pid``, which
+    holds this run's pid while it lasts and is emptied when it ends.
+
+    The operating system releases the lock when the process ends, killed or not, so a stale
+    lock cannot block a later run; a pid still in the file then says that run was killed.
+    Returns the file descriptor (for :func:`release_output_folder`) and that dead run's pid
+    (None after a clean end). Raises RunError when another run holds the folder.
+    """
+    path = out_dir / LOCK_FILE
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        import fcntl
+
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        holder = _read_pid(fd)
+        os.close(fd)
+        who = f" (pid {holder})" if holder else ""
+        raise RunError(f"another specflow run{who} is using {out_dir}; wait until it ends, "
+                       "then run again") from None
+    except (ImportError, OSError):
+        # no file locks here (some network file systems): fall back on the recorded pid
+        holder = _read_pid(fd)
+        if holder and holder != os.getpid() and _pid_alive(holder):
+            os.close(fd)
+            raise RunError(f"another specflow run (pid {holder}) is using {out_dir}; wait "
+                           "until it ends, then run again") from None
+    previous = _read_pid(fd)
+    os.ftruncate(fd, 0)
+    os.pwrite(fd, f"{os.getpid()}\n".encode("ascii"), 0)
+    return fd, previous if previous != os.getpid() else None
+
+
+def release_output_folder(fd: int) -> None:
+    """A clean end: empty the pid file, then let the lock go."""
+    try:
+        os.ftruncate(fd, 0)
+    finally:
+        os.close(fd)
+
+
+def _snakemake_locked(out_dir: Path) -> bool:
+    locks = out_dir / ".snakemake" / "locks"
+    return locks.is_dir() and any(locks.iterdir())
+
+
+def _sweep_temporaries(out_dir: Path) -> list[Path]:
+    """Remove what a killed run left half-written: ``.<name>.tmp-<pid>`` files (atomic
+    writes, see :func:`specflow.data.write_atomic_bytes`) and the snapshot folders
+    ``runs/.tmp-<pid>-*`` and ``runs/.trash-*``, when the process named is gone."""
+    import re
+    import shutil
+
+    pattern = re.compile(r"^\..+\.tmp-(\d+)$|^\.tmp-(\d+)-[0-9a-f]+$|^\.trash-\d+-[0-9a-f]+$")
+    removed: list[Path] = []
+    for root, dirs, files in os.walk(out_dir):
+        if Path(root) == out_dir and ".snakemake" in dirs:
+            dirs.remove(".snakemake")  # Snakemake's own metadata: not ours to touch
+        for name in [*files, *dirs]:
+            m = pattern.match(name)
+            if not m:
+                continue
+            pid = m.group(1) or m.group(2)
+            if pid and (int(pid) == os.getpid() or _pid_alive(int(pid))):
+                continue
+            p = Path(root) / name
+            if p.is_dir() and not p.is_symlink():
+                shutil.rmtree(p, ignore_errors=True)
+                if name in dirs:
+                    dirs.remove(name)
+            else:
+                p.unlink(missing_ok=True)
+            removed.append(p)
+    return removed
 
 
 def _unlock(plan: Plan) -> None:
@@ -532,16 +610,33 @@ def _crash_report(plan: Plan, outcome: Outcome, log_file: Path) -> tuple[list[st
 def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = None,
         dry_run: bool = False, force: bool = False, verbose: bool = False, stream=None) -> int:
     """``specflow run``; returns the exit code (see :data:`EXIT_CODES`)."""
-    from . import __version__
     from .spec import load_spec
 
     stream = stream or sys.stdout
     t0 = time.monotonic()
     loaded = load_spec(spec)
     plan = make_plan(loaded)
+    # held until this process ends; the fingerprints are not rewritten under a running run
+    fd, killed = hold_output_folder(plan.out_dir)
+    try:
+        return _run(loaded, plan, killed, t0, cores=cores, cluster=cluster, dry_run=dry_run,
+                    force=force, verbose=verbose, stream=stream)
+    finally:
+        release_output_folder(fd)
+
+
+def _run(loaded, plan: Plan, killed: int | None, t0: float, *, cores: int | None,
+         cluster: str | None, dry_run: bool, force: bool, verbose: bool, stream) -> int:
+    from . import __version__
+
     out_dir = plan.out_dir
-    prints = refresh_fingerprints(plan)
     say = lambda text="": print(text, file=stream, flush=True)  # noqa: E731
+    swept = _sweep_temporaries(out_dir)
+    if killed is not None:
+        say(f"note: the last run (pid {killed}) was interrupted; "
+            + (f"removed {len(swept)} half-written file(s); " if swept else "")
+            + "finished jobs are kept, the rest run again")
+    prints = refresh_fingerprints(plan)
 
     if not force:
         last = nothing_to_do(plan, prints)
@@ -565,9 +660,9 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     del frames
 
     log_file = out_dir / "logs" / "snakemake.log"
-    pid_file = out_dir / "logs" / "run.pid"
-    if _lock_check(plan, pid_file):
-        _unlock(plan)
+    if _snakemake_locked(out_dir) and killed is not None:
+        _unlock(plan)  # the killed run's; no specflow run can hold it now (we hold the folder)
+        say(f"note: removed the Snakemake lock left by the interrupted run (pid {killed})")
     pending = snakemake(plan, dry_run=True, cores=cores, executor=Executor(), force=force)
     if not pending.ok:
         raise RunError(f"Snakemake could not plan the run: {pending.message}; log: {log_file}")
@@ -580,15 +675,14 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
         say(f"nothing to do (Snakemake): {len(plan.specs)} specifications up to date; "
             f"outputs in {out_dir}")
         summary = _summarise(plan, [])
-        _write_run_json(plan, prints, summary, t0, executor, jobs, cores)
+        _record(loaded, plan, prints, summary, t0, executor, jobs, cores)
         return EXIT_SOME_FAILED if summary["failed"] else EXIT_OK
 
     for sub in ("progress", "crash"):
         d = out_dir / "logs" / sub
         for p in d.glob("*.json") if d.is_dir() else []:
             p.unlink(missing_ok=True)
-    pid_file.parent.mkdir(parents=True, exist_ok=True)
-    pid_file.write_text(f"{os.getpid()}\n")
+    log_file.parent.mkdir(parents=True, exist_ok=True)
     with open(log_file, "w", encoding="utf-8") as f:  # the log holds the last run
         f.write(f"\n=== specflow {__version__} run of {plan.spec_path} at "
                 f"{time.strftime('%Y-%m-%d %H:%M:%S')} ===\n")
@@ -597,16 +691,13 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     say(f"specflow: {len(plan.specs)} specifications in {len(plan.batches)} batches; running "
         f"{counts.get('prepare', 0)} prepare, {counts.get('fit', 0)} fit and "
         f"{counts.get('collate', 0)} collate job(s) {where}; log: {log_file}")
-    try:
-        if verbose:
-            outcome = snakemake(plan, dry_run=False, cores=cores, executor=executor, force=force,
-                                verbose=True, log_file=log_file)
-        else:
-            with Progress(plan, batches, stream, t0):
-                outcome = snakemake(plan, dry_run=False, cores=cores, executor=executor,
-                                    force=force, log_file=log_file)
-    finally:
-        pid_file.unlink(missing_ok=True)
+    if verbose:
+        outcome = snakemake(plan, dry_run=False, cores=cores, executor=executor, force=force,
+                            verbose=True, log_file=log_file)
+    else:
+        with Progress(plan, batches, stream, t0):
+            outcome = snakemake(plan, dry_run=False, cores=cores, executor=executor,
+                                force=force, log_file=log_file)
 
     if not outcome.ok:
         lines, code = _crash_report(plan, outcome, log_file)
@@ -614,12 +705,13 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
             print(f"error: {line}", file=sys.stderr, flush=True)
         return code
 
+    # the data must still be what the run began with, or the outputs are of data now gone
+    check_data_unchanged(plan, {n: p.fingerprint for n, p in prints.items()},
+                         consequence="the outputs are of its earlier content and this run is "
+                                     "not recorded")
     summary = _summarise(plan, batches)
     _remove_stale_batches(plan)
-    _write_run_json(plan, prints, summary, t0, executor, jobs, cores)
-    from .revisions import snapshot
-
-    revision = snapshot(loaded, out_dir)  # keeps this run's estimates for `specflow diff`
+    revision = _record(loaded, plan, prints, summary, t0, executor, jobs, cores)
     say(f"done in {_clock(time.monotonic() - t0)}: {summary['specifications']} specifications: "
         f"{summary['fitted']} fitted, {summary['reused']} reused, {summary['failed']} failed")
     for f in summary["failures"]:
@@ -649,8 +741,23 @@ def _print_plan(say, plan: Plan, jobs: list[dict], batches: list[str], force: bo
         say(f"  {j['rule']:<8} {what:<14} {j['reason']}")
 
 
+def _record(loaded, plan: Plan, prints: dict, summary: dict, t0: float, executor: Executor,
+            jobs: list[dict], cores: int | None):
+    """Write ``run.json`` and keep the run's estimates as a snapshot (for ``specflow diff``),
+    in an order a kill cannot break: run.json first without the state the "nothing to do"
+    shortcut compares (the snapshot reads the data checksums from it), then the snapshot, then
+    run.json whole. Killed before the end, the next run finds no state, asks Snakemake, and
+    records again (a snapshot of the same estimates is not taken twice)."""
+    from .revisions import snapshot
+
+    _write_run_json(plan, prints, summary, t0, executor, jobs, cores, complete=False)
+    revision = snapshot(loaded, plan.out_dir)
+    _write_run_json(plan, prints, summary, t0, executor, jobs, cores)
+    return revision
+
+
 def _write_run_json(plan: Plan, prints: dict, summary: dict, t0: float, executor: Executor,
-                    jobs: list[dict], cores: int | None) -> None:
+                    jobs: list[dict], cores: int | None, complete: bool = True) -> None:
     from datetime import datetime, timezone
 
     from . import __version__
@@ -676,7 +783,7 @@ def _write_run_json(plan: Plan, prints: dict, summary: dict, t0: float, executor
         "datasets": {n: {"path": p.path, "file_sha256": p.file_sha256,
                          "data_fingerprint": p.data_fingerprint, "fingerprint": p.fingerprint}
                      for n, p in prints.items()},
-        "state": _state(plan, prints),
+        "state": _state(plan, prints) if complete else None,
         "files": _mtimes(plan.out_dir, _tracked_files(plan)),
     }
     write_atomic_text(plan.out_dir / RUN_FILE, json.dumps(record, indent=1, sort_keys=True) + "\n")

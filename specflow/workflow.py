@@ -283,6 +283,64 @@ def read_fingerprint(path: Path) -> str:
         raise RunError(f"{path}: fingerprint file missing (run 'specflow run' again)") from None
 
 
+def _changed(plan: Plan, name: str, expected: str, consequence: str) -> Problem | None:
+    """A problem if dataset ``name``'s file no longer gives the fingerprint ``expected``."""
+    from .data import resolve_path, sha256_file
+
+    try:
+        now = full_fingerprint(plan.loaded, name, sha256_file(resolve_path(plan.loaded, name)))[1]
+    except (OSError, SpecflowError):
+        now = None  # gone or unreadable: changed as well
+    if now == expected:
+        return None
+    path = plan.loaded.spec.data[name].path
+    return plan.loaded.problem(("data", name, "path"), f"data file '{path}' (dataset '{name}') "
+                               f"changed while the run was going; {consequence}: run again")
+
+
+def check_data_unchanged(plan: Plan, expected: dict[str, str] | None = None,
+                         consequence: str = "nothing was collated") -> None:
+    """Refuse to go on with results of data that is no longer on disk.
+
+    Every dataset's file must still give the fingerprint the run began with (``expected``:
+    dataset -> fingerprint-file content; default: the fingerprint files, written before the
+    workflow started), and every batch must have been fitted under that fingerprint (the
+    ``data`` key its reuse store was written with). Raises SpecError, one line a dataset.
+    """
+    problems: list[Problem] = []
+    for name in plan.datasets:
+        want = (expected[name] if expected is not None
+                else read_fingerprint(fingerprint_path(plan.out_dir, name)))
+        p = _changed(plan, name, want, consequence)
+        if p is None and expected is None:
+            stale = [b for b in plan.batches if plan.dataset_of(b) == name
+                     and _store_data(plan.out_dir / "fits" / ".reuse" / f"{b}.json") not in (None, want)]
+            if stale:
+                p = plan.loaded.problem(("data", name, "path"), f"batch {stale[0]} was fitted on "
+                                        f"other data than dataset '{name}' holds now; {consequence}: "
+                                        "run again")
+        if p is not None:
+            problems.append(p)
+    if problems:
+        raise SpecError(problems)
+
+
+def _store_data(path: Path) -> str | None:
+    """The data fingerprint a batch's reuse store was written under (None: no readable store).
+
+    fit_batch writes the store's keys in a fixed order with ``data`` among the first, so the
+    head of the file is enough (a store of a large batch is megabytes)."""
+    import re
+
+    try:
+        with open(path, "rb") as f:
+            head = f.read(4096).decode("utf-8", "replace")
+    except OSError:
+        return None
+    m = re.search(r'"data":"([0-9a-f]+)"', head)
+    return m.group(1) if m else None
+
+
 # ---------------------------------------------------------------------------------------------
 # job helpers: crash notes and progress files
 
@@ -336,7 +394,10 @@ def prepare_dataset(spec_path: str | Path, dataset: str, fingerprint_file: Path,
     expected = read_fingerprint(fingerprint_file)
     df, digest = prepare(plan.loaded, dataset)  # the SHA-256 of the bytes it read
     if full_fingerprint(plan.loaded, dataset, digest)[1] != expected:
-        raise RunError(f"dataset '{dataset}' changed while the workflow ran; run it again")
+        path = plan.loaded.spec.data[dataset].path
+        raise SpecError([plan.loaded.problem(("data", dataset, "path"), f"data file '{path}' "
+                         f"(dataset '{dataset}') changed while the run was going; it was not "
+                         "prepared: run again")])
     write_parquet_atomic(df, Path(out))
 
 
@@ -477,6 +538,7 @@ def collate(spec_path: str | Path, out_dir: Path) -> list[Path]:
     plan = _plan_for(spec_path)
     out_dir = Path(out_dir).resolve()
     results = read_batches([out_dir / f for f in plan.batch_files()])
+    check_data_unchanged(plan)  # after reading: the results collated are the ones checked
     return build_all(plan.loaded, plan.specs, results, out_dir)
 
 
