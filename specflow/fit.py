@@ -97,6 +97,9 @@ def _numbers_or_fail(s: pd.Series, name: str, role: str) -> np.ndarray:
     return pd.to_numeric(s, errors="coerce").to_numpy(dtype="float64", na_value=np.nan)
 
 
+_CODES_KEEP_MAX = 2_000_000  # integer code columns of larger frames are recomputed, not kept
+
+
 class SampleCache:
     """Builds and remembers samples and swept columns for one prepared frame."""
 
@@ -273,13 +276,16 @@ class SampleCache:
             s = self.df[name]
             vals = s.to_numpy()
             if vals.dtype.kind in "iu" and vals.size and 0 <= vals.min() and vals.max() < 4 * vals.size:
-                # small non-negative integers: the same numbering as np.unique, without a sort
+                # small non-negative integers: the same numbering as np.unique, without a sort;
+                # cheap to redo, so not kept for large frames (memory)
                 inv = recode([vals])[0][0]
+                if vals.size > _CODES_KEEP_MAX:
+                    return inv
             else:
                 if vals.dtype.kind not in "biufmM":  # text, categories, nullable types: by label
                     vals = np.asarray(vals, dtype=object).astype(str)  # missing ones are dropped
                 _, inv = np.unique(vals, return_inverse=True)
-            self._numeric[key] = inv.astype(np.int64).ravel()
+            self._numeric[key] = inv.astype(np.int64, copy=False).ravel()
         return self._numeric[key]
 
     def column(self, s: Sample, name: str, transform: str | None = None) -> np.ndarray:
