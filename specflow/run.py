@@ -299,9 +299,7 @@ def snakemake(plan: Plan, *, dry_run: bool, cores: int | None, executor: Executo
             )
             outcome.ok = True
         except LockException:
-            raise RunError(f"{plan.out_dir} is locked by another Snakemake run; if none is running, "
-                           f"unlock it with: snakemake -s {snakefile()} --config spec={plan.spec_path} "
-                           "--unlock") from None
+            raise _locked_error(plan) from None
         except WorkflowError as exc:
             outcome.message = str(exc).strip().splitlines()[-1] if str(exc).strip() else type(exc).__name__
         except Exception as exc:  # noqa: BLE001 - Snakemake raises many types; report, don't trace
@@ -493,6 +491,17 @@ def release_output_folder(fd: int) -> None:
         os.close(fd)
 
 
+def _locked_error(plan: Plan) -> RunError:
+    """Snakemake's lock on the folder without a specflow run behind it: say how to lift it."""
+    import shlex
+
+    exe = Path(sys.executable).parent / "snakemake"
+    cmd = [str(exe) if exe.is_file() else "snakemake", "-s", str(snakefile()), "--config",
+           f"spec={plan.spec_path}", "--unlock"]
+    return RunError(f"{plan.out_dir} is locked by a Snakemake run that specflow did not start; "
+                    f"if it is no longer running, unlock it with: {shlex.join(cmd)}")
+
+
 def _snakemake_locked(out_dir: Path) -> bool:
     locks = out_dir / ".snakemake" / "locks"
     return locks.is_dir() and any(locks.iterdir())
@@ -636,6 +645,11 @@ def _run(loaded, plan: Plan, killed: int | None, t0: float, *, cores: int | None
         say(f"note: the last run (pid {killed}) was interrupted; "
             + (f"removed {len(swept)} half-written file(s); " if swept else "")
             + "finished jobs are kept, the rest run again")
+    if _snakemake_locked(out_dir):
+        if killed is None:
+            raise _locked_error(plan)
+        _unlock(plan)  # the killed run's; no specflow run can hold it now (we hold the folder)
+        say(f"note: removed the Snakemake lock left by the interrupted run (pid {killed})")
     prints = refresh_fingerprints(plan)
 
     if not force:
@@ -660,9 +674,6 @@ def _run(loaded, plan: Plan, killed: int | None, t0: float, *, cores: int | None
     del frames
 
     log_file = out_dir / "logs" / "snakemake.log"
-    if _snakemake_locked(out_dir) and killed is not None:
-        _unlock(plan)  # the killed run's; no specflow run can hold it now (we hold the folder)
-        say(f"note: removed the Snakemake lock left by the interrupted run (pid {killed})")
     pending = snakemake(plan, dry_run=True, cores=cores, executor=Executor(), force=force)
     if not pending.ok:
         raise RunError(f"Snakemake could not plan the run: {pending.message}; log: {log_file}")
