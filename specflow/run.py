@@ -2,6 +2,11 @@
 
 Order of a run:
 
+0. Hold the output folder (:func:`hold_output_folder`: an exclusive lock on ``O/logs/run.pid``
+   that the operating system releases however the process ends). A second run on the same
+   folder is refused (exit 2). After a killed run, its half-written temporary files are
+   removed and its Snakemake lock lifted, with a note; a Snakemake lock that no specflow run
+   left is refused with the command that lifts it.
 1. Load the spec, expand the grid, cut it into batches (:func:`specflow.workflow.make_plan`)
    and refresh the data fingerprints (rewritten only when the data's content changes).
 2. **Nothing to do?** If the grid's batches, the fingerprints, the code versions and the
@@ -14,8 +19,10 @@ Order of a run:
    N cores or on a cluster through an executor plugin and a profile. Snakemake's log goes to
    ``O/logs/snakemake.log``; the terminal shows specflow's progress (specifications done,
    failed and left, elapsed time, estimate of time left) unless ``--verbose``.
-5. Summarise (fitted, reused, failed with reasons, where the outputs are) and write
-   ``O/run.json``.
+5. Check that every data file still has the bytes the run began with (else exit 2: the
+   outputs would be of data no longer on disk; collate checks the same before it writes).
+   Summarise (fitted, reused, failed with reasons, where the outputs are), write
+   ``O/run.json`` and keep a snapshot of the estimates (:func:`_record`).
 
 Exit codes: see :data:`EXIT_CODES` (also in ``specflow run --help``).
 """
@@ -32,8 +39,8 @@ from pathlib import Path
 
 from .errors import RunError, SpecflowError
 from .workflow import (
-    Plan, check_data_unchanged, code_version, crash_note_path, make_plan, progress_path,
-    refresh_fingerprints, snakefile, workflow_code_hash,
+    JOB_LOCK, Plan, check_data_unchanged, code_version, crash_note_path, jobs_running, make_plan,
+    progress_path, refresh_fingerprints, snakefile, workflow_code_hash,
 )
 
 EXIT_OK, EXIT_SOME_FAILED, EXIT_USER, EXIT_CRASH = 0, 1, 2, 3
@@ -650,6 +657,9 @@ def _run(loaded, plan: Plan, killed: int | None, t0: float, *, cores: int | None
             raise _locked_error(plan)
         _unlock(plan)  # the killed run's; no specflow run can hold it now (we hold the folder)
         say(f"note: removed the Snakemake lock left by the interrupted run (pid {killed})")
+    if jobs_running(out_dir):
+        raise RunError(f"job processes of an interrupted run are still working in {out_dir} "
+                       f"(they hold {out_dir / JOB_LOCK}); wait until they end, then run again")
     prints = refresh_fingerprints(plan)
 
     if not force:

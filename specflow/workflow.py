@@ -12,6 +12,8 @@ Snakemake's own metadata and lock live in ``O/.snakemake``)::
     O/fits/.reuse/<batch>.json     the same results with the keys they were fitted under
     O/estimates.csv ...            collate's outputs
     O/logs/snakemake.log           Snakemake's log (``specflow run``)
+    O/logs/run.pid                 the pid of the specflow run holding the folder (locked)
+    O/logs/jobs.lock               held (shared) by every running job, see :func:`hold_job_lock`
     O/logs/<step>/<name>.log       each job's own output
     O/logs/progress/<batch>.json   a fit job's running counts (read by the progress display)
     O/logs/crash/<job>.json        written when a job crashes: the specification and the error
@@ -545,6 +547,48 @@ def collate(spec_path: str | Path, out_dir: Path) -> list[Path]:
 # ---------------------------------------------------------------------------------------------
 # command line of the jobs: python -m specflow.workflow STEP ...
 
+JOB_LOCK = Path("logs") / "jobs.lock"
+_JOB_LOCK: list[int] = []  # the job's lock descriptor, open until the process ends
+
+
+def hold_job_lock(out_dir: Path) -> int | None:
+    """A shared lock on ``O/logs/jobs.lock`` for as long as this job process lives.
+
+    Killing only ``specflow run`` leaves its job processes running; they still hold this lock,
+    so the next run can tell (:func:`jobs_running`) and wait rather than run the same jobs
+    beside them. None where the file system has no locks."""
+    path = Path(out_dir) / JOB_LOCK
+    try:
+        import fcntl
+
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+        fcntl.flock(fd, fcntl.LOCK_SH)
+        return fd
+    except (ImportError, OSError):
+        return None
+
+
+def jobs_running(out_dir: Path) -> bool:
+    """True while some job process holds ``O/logs/jobs.lock`` (see :func:`hold_job_lock`)."""
+    path = Path(out_dir) / JOB_LOCK
+    try:
+        import fcntl
+
+        fd = os.open(path, os.O_RDONLY)
+    except (ImportError, OSError):
+        return False
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return False
+    except BlockingIOError:
+        return True
+    except OSError:
+        return False
+    finally:
+        os.close(fd)
+
 
 def _job_main(argv: list[str] | None = None) -> int:
     p = argparse.ArgumentParser(prog="python -m specflow.workflow",
@@ -577,6 +621,7 @@ def _job_main(argv: list[str] | None = None) -> int:
     try:
         out_dir: Path | None = load_spec(a.spec).output_dir
         crash_note_path(out_dir, job).unlink(missing_ok=True)
+        _JOB_LOCK.append(hold_job_lock(out_dir))
     except SpecflowError:
         out_dir = None
     t0 = time.perf_counter()

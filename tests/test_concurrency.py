@@ -232,6 +232,43 @@ def test_stale_lock_of_a_killed_run_is_removed_with_a_note(contested, tmp_path):
     assert again.stdout.startswith("nothing to do: 44 specifications")
 
 
+def test_jobs_left_running_by_a_run_killed_alone(contested, tmp_path):
+    """``kill -9`` of specflow's own pid only: its fit job goes on as an orphan. A new run
+    while it works is refused (the job processes are stopped meanwhile, so they are certainly
+    still there); once they have ended, a run completes the study."""
+    spec = make_study(tmp_path)
+    out = out_dir(spec)
+    a = Background(command(spec), tmp_path, "a")
+    try:
+        a.wait_for(lambda: fit_running(out))
+        os.kill(a.pid, signal.SIGKILL)
+        a.proc.wait(timeout=30)
+        a.signal(signal.SIGSTOP)  # the orphaned job processes (specflow itself is gone)
+        try:
+            refused = run_to_end(spec)
+        finally:
+            a.signal(signal.SIGCONT)
+        deadline = time.monotonic() + 120
+        while True:  # the orphans finish their job
+            try:
+                os.killpg(a.pid, 0)
+            except ProcessLookupError:
+                break
+            assert time.monotonic() < deadline
+            time.sleep(0.05)
+    finally:
+        a.kill()
+    assert refused.returncode == 2, refused.stdout + refused.stderr
+    line = one_error_line(refused.stderr)
+    assert line == (f"error: job processes of an interrupted run are still working in {out} "
+                    f"(they hold {out / 'logs' / 'jobs.lock'}); wait until they end, then run again")
+
+    done = run_to_end(spec)
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert exhibits(out) == contested["exhibits"]
+    assert not [p for p in out.rglob("*") if ".tmp" in p.name]
+
+
 def test_lock_of_a_snakemake_run_specflow_did_not_start(contested, tmp_path):
     """Snakemake run directly on the study and killed: specflow refuses, with the command that
     lifts the lock; after that command the run completes."""
