@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from .files import sha256_and_size, sha256_file, write_atomic_bytes, write_atomic_text  # noqa: F401
 from .errors import DataError, Problem, SpecError
 from .spec import Dataset, LoadedSpec
 
@@ -40,24 +41,6 @@ def resolve_path(loaded: LoadedSpec, name: str) -> Path:
                          f"path '{ds.path}' resolves outside the study folder {root} "
                          "(set allow_outside = true to permit it)")])
     return p
-
-
-def sha256_and_size(path: Path, chunk: int = 1 << 20) -> tuple[str, int]:
-    """SHA-256 (hex) and size in bytes of a file, read in chunks."""
-    h = hashlib.sha256()
-    size = 0
-    with open(path, "rb") as f:
-        while True:
-            b = f.read(chunk)
-            if not b:
-                break
-            h.update(b)
-            size += len(b)
-    return h.hexdigest(), size
-
-
-def sha256_file(path: Path) -> str:
-    return sha256_and_size(path)[0]
 
 
 def read_table(path: Path, fmt: str, columns: list[str] | None = None) -> pd.DataFrame:
@@ -156,21 +139,6 @@ def fingerprint(loaded: LoadedSpec, name: str, file_sha: str) -> str:
     parts += [f"{k}={expr.parse(v).canonical()}" for k, v in ds.derive.items()]
     parts.append(expr.parse(ds.filter).canonical() if ds.filter else "")
     return hashlib.sha256("\n".join(parts).encode()).hexdigest()
-
-
-def write_atomic_bytes(path: Path, data: bytes) -> None:
-    """Write a file so that readers see the old content or the whole new content, never half."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.tmp-{os.getpid()}")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
-
-
-def write_atomic_text(path: Path, text: str) -> None:
-    write_atomic_bytes(path, text.encode("utf-8"))
 
 
 def write_parquet_atomic(df: pd.DataFrame, path: Path) -> None:

@@ -29,7 +29,7 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 
-from .data import sha256_and_size  # noqa: F401 - part of this module's interface
+from .files import sha256_and_size  # noqa: F401 - part of this module's interface
 from .errors import SpecflowError
 
 MANIFEST_NAME = "MANIFEST.sha256"
