@@ -12,3 +12,14 @@ def test_help_imports_no_heavy_library():
             f"print(sorted(m for m in {HEAVY!r} if m in sys.modules))\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]", out.stdout
+
+
+def test_check_imports_no_fitting_or_plotting_library():
+    code = ("import sys, specflow.cli as c\n"
+            "assert c.main(['check', 'specs/canal_yields.toml']) == 0\n"
+            "print(sorted(m for m in ('scipy', 'linearmodels', 'matplotlib', 'snakemake') if m in sys.modules))\n")
+    from pathlib import Path
+
+    root = Path(__file__).resolve().parents[1]
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=root)
+    assert out.stdout.strip().splitlines()[-1] == "[]", out.stdout
