@@ -516,7 +516,7 @@ def _snakemake_locked(out_dir: Path) -> bool:
 
 def _sweep_temporaries(out_dir: Path) -> list[Path]:
     """Remove what a killed run left half-written: ``.<name>.tmp-<pid>`` files (atomic
-    writes, see :func:`specflow.data.write_atomic_bytes`) and the snapshot folders
+    writes, see :func:`specflow.files.write_atomic_bytes`) and the snapshot folders
     ``runs/.tmp-<pid>-*`` and ``runs/.trash-*``, when the process named is gone."""
     import re
     import shutil
