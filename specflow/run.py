@@ -490,10 +490,11 @@ def hold_output_folder(out_dir: Path) -> tuple[int, int | None]:
     return fd, previous if previous != os.getpid() else None
 
 
-def release_output_folder(fd: int) -> None:
-    """A clean end: empty the pid file, then let the lock go."""
+def release_output_folder(fd: int, keep_pid: bool = False) -> None:
+    """Let the lock go; after a clean end (not ``keep_pid``) empty the pid file first."""
     try:
-        os.ftruncate(fd, 0)
+        if not keep_pid:
+            os.ftruncate(fd, 0)
     finally:
         os.close(fd)
 
@@ -634,11 +635,17 @@ def run(spec: str | Path, *, cores: int | None = None, cluster: str | None = Non
     plan = make_plan(loaded)
     # held until this process ends; the fingerprints are not rewritten under a running run
     fd, killed = hold_output_folder(plan.out_dir)
+    clean = False
     try:
-        return _run(loaded, plan, killed, t0, cores=cores, cluster=cluster, dry_run=dry_run,
+        code = _run(loaded, plan, killed, t0, cores=cores, cluster=cluster, dry_run=dry_run,
                     force=force, verbose=verbose, stream=stream)
-    finally:
-        release_output_folder(fd)
+        clean = True
+        return code
+    except SpecflowError:
+        clean = True
+        raise
+    finally:  # interrupted (Ctrl-C) or crashed: the pid stays, the next run treats it as killed
+        release_output_folder(fd, keep_pid=not clean)
 
 
 def _run(loaded, plan: Plan, killed: int | None, t0: float, *, cores: int | None,

@@ -285,3 +285,25 @@ def test_kill_a_forced_rerun_over_finished_outputs(reference, tmp_path):
         kill_group(proc)
     assert running
     resume(spec, reference, "killed forced rerun")
+
+
+def test_killed_between_the_run_record_and_the_snapshot(reference, tmp_path):
+    """What a kill between the two writes of run.json leaves (specflow.run._record): the
+    record without the state the "nothing to do" shortcut compares, and no snapshot. The
+    window is milliseconds wide, so it is made here rather than hit: the rerun must ask
+    Snakemake, find nothing to do, keep the snapshot and complete the record."""
+    spec = make_study(tmp_path / "s")
+    out = out_dir(spec)
+    shutil.copytree(out_dir(reference["spec"]), out, symlinks=True)
+    record = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    record["state"] = None
+    (out / "run.json").write_text(json.dumps(record), encoding="utf-8")
+    shutil.rmtree(out / "runs")
+
+    proc = run_to_end(spec)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert proc.stdout.startswith("nothing to do (Snakemake): 44 specifications up to date")
+    check_whole(spec, reference)
+    assert json.loads((out / "run.json").read_text(encoding="utf-8"))["state"]
+    again = run_to_end(spec)
+    assert again.returncode == 0 and again.stdout.startswith("nothing to do: 44 specifications")
