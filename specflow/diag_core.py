@@ -265,17 +265,19 @@ class Core:
         return coef, self.y - A @ coef
 
     @cached_property
-    def _score_blocks(self) -> tuple[np.ndarray, dict[str, slice]]:
-        """Every score series a robust diagnostic uses, stacked column-wise.
+    def _score_blocks(self) -> tuple[list[tuple[np.ndarray, np.ndarray]], dict[str, slice], int]:
+        """Every score series a robust diagnostic uses, as (left, right) factors: the scores of
+        a block are ``left * right[:, None]``, stacked column-wise in the order listed.
 
         ``rf``: ``z*e_y, z*v_1, ..., z*v_p`` (reduced form; blocks by column of [y, X]);
         ``zx``: ``z*x_1, ..., z*x_p`` (the Kleibergen-Paap LM scores); ``ze``: ``z*e`` at the
         2SLS residuals (GMM weight, C statistics and, as ``xhat*e = Pi'(z*e)``, the 2SLS SE);
         ``cf``: ``[X, V]*u`` of the control-function regression.
+        Returns (factors, column slice of each block, total width).
         """
-        n, p, L = self.n, self.p, self.L
+        p = self.p
         Z, E = self.Z, self.E
-        parts: list[tuple[str, np.ndarray, np.ndarray]] = []  # (name, left, right): scores left * right
+        parts: list[tuple[str, np.ndarray, np.ndarray]] = []  # (name, left, right)
         parts += [("rf", Z, E[:, a]) for a in range(p + 1)]
         parts += [("zx", Z, self.X[:, j]) for j in range(p)]
         try:
@@ -288,34 +290,67 @@ class Core:
             parts += [("cf", np.column_stack([self.X, E[:, 1:]]), u)]
         except Unavailable:
             pass
-        S = np.empty((n, sum(left.shape[1] for _, left, _ in parts)))
         index: dict[str, slice] = {}
         at = 0
-        for name, left, right in parts:
+        for name, left, _ in parts:
             w = left.shape[1]
-            np.multiply(left, right[:, None], out=S[:, at:at + w])
             start = index[name].start if name in index else at
             index[name] = slice(start, at + w)
             at += w
-        return S, index
+        return [(left, right) for _, left, right in parts], index, at
+
+    def _scores(self, rows: slice) -> np.ndarray:
+        """The stacked score matrix on a range of rows."""
+        factors, _, width = self._score_blocks
+        lo, hi, _ = rows.indices(self.n)
+        S = np.empty((hi - lo, width))
+        at = 0
+        for left, right in factors:
+            w = left.shape[1]
+            np.multiply(left[rows], right[rows, None], out=S[:, at:at + w])
+            at += w
+        return S
+
+    CHUNK = 262_144  # rows of scores held at once (robust and cluster meats are sums over rows)
 
     @cached_property
     def meats(self) -> tuple[np.ndarray, np.ndarray]:
-        """(meat with k = 0 by :func:`kernels.meat`, raw meat) of the stacked scores."""
-        S, _ = self._score_blocks
-        m0 = kernels.meat(S, self.cov, self.d.clusters, k=0, hac_lags=self.d.hac_lags)
+        """(meat with k = 0 by :func:`kernels.meat`, raw meat) of the stacked scores.
+
+        Robust and clustered meats are accumulated over row chunks, so the n x m score matrix
+        is never held whole; the HAC meat needs neighbouring rows and is formed in one piece.
+        """
         cl, n = self.d.clusters, self.n
-        if self.cov == "cluster" and cl.ndim == 2:
-            raw = np.zeros_like(m0)
-            for codes, sign in ((cl.codes[:, 0], 1.0), (cl.codes[:, 1], 1.0), (cl.intersection(), -1.0)):
-                s = kernels.group_sum(S, codes)
-                raw += sign * (s.T @ s)
-        elif self.cov == "cluster":  # kernels' one-way factor with k = 0 is G/(G-1) * (n-1)/n
-            g = cl.counts[0]
-            raw = m0 * ((g - 1.0) / g) * (n / (n - 1.0))
-        else:  # robust: factor n/(n - 0) = 1; hac: Bartlett-weighted sum, factor 1
-            raw = m0
-        return m0, raw
+        if self.cov == "hac" or (self.cov == "cluster" and cl is None):
+            S = self._scores(slice(0, n))
+            m0 = kernels.meat(S, self.cov, cl, k=0, hac_lags=self.d.hac_lags)
+            return m0, m0
+        chunks = [slice(i, min(i + self.CHUNK, n)) for i in range(0, n, self.CHUNK)]
+        if self.cov == "cluster":
+            groups = [cl.codes[:, j] for j in range(cl.ndim)]
+            if cl.ndim == 2:
+                groups.append(cl.intersection())
+            sizes = [int(codes.max()) + 1 for codes in groups]
+            sums = [None] * len(groups)
+            for rows in chunks:
+                S = self._scores(rows)
+                for i, codes in enumerate(groups):
+                    g = kernels.group_sum(S, codes[rows], sizes[i])
+                    sums[i] = g if sums[i] is None else sums[i] + g
+            parts = [(s.T @ s, s.shape[0]) for s in sums]
+            if cl.ndim == 1:
+                raw = parts[0][0]
+            else:
+                raw = parts[0][0] + parts[1][0] - parts[2][0]
+            factor = lambda g: (g / (g - 1.0)) * ((n - 1.0) / n)  # noqa: E731 - kernels' with k = 0
+            signs = (1.0, 1.0, -1.0)
+            m0 = sum(sign * factor(gc) * m for sign, (m, gc) in zip(signs, parts))
+            return m0, raw
+        raw = None  # robust: kernels' factor n/(n - 0) = 1
+        for rows in chunks:
+            S = self._scores(rows)
+            raw = S.T @ S if raw is None else raw + S.T @ S
+        return raw, raw
 
     def block(self, a: str, k: int | None, b: str | None = None) -> np.ndarray:
         """Meat between score blocks ``a`` and ``b`` (default ``a``).
@@ -324,7 +359,7 @@ class Core:
         k = 0 times ``n / (n - k)``, which is its factor with k for every covariance type);
         ``k`` None: the raw meat. Two-way cluster blocks are clipped to be PSD.
         """
-        _, index = self._score_blocks
+        _, index, _ = self._score_blocks
         if a not in index or (b is not None and b not in index):
             raise Unavailable("the scores of this statistic could not be formed")
         ia, ib = index[a], index[b or a]
