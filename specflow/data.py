@@ -43,13 +43,24 @@ def resolve_path(loaded: LoadedSpec, name: str) -> Path:
     return p
 
 
+def read_parquet_lean(path: Path, columns: list[str] | None = None) -> pd.DataFrame:
+    """Read Parquet into pandas holding each column once: Arrow's buffers are released as the
+    columns are converted (split blocks, self-destruct), so the peak is about one copy."""
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(path, columns=columns)
+    df = table.to_pandas(split_blocks=True, self_destruct=True)
+    del table
+    return df
+
+
 def read_table(path: Path, fmt: str, columns: list[str] | None = None) -> pd.DataFrame:
     """Read one data file; raise DataError with one line on any failure."""
     try:
         if fmt == "csv":
             return pd.read_csv(path, usecols=columns, low_memory=False)
         if fmt == "parquet":
-            return pd.read_parquet(path, columns=columns)
+            return read_parquet_lean(path, columns)
         if fmt == "dta":
             return pd.read_stata(path, columns=columns, convert_categoricals=False)
     except FileNotFoundError:

@@ -463,7 +463,7 @@ def fit_batch(spec_path: str | Path, batch: str, digest: str, data_file: Path,
     """
     import pandas as pd
 
-    from .data import validate_against_data
+    from .data import read_parquet_lean, validate_against_data
     from .fit import SampleCache, fit
     from .results import Batch, FitResult
 
@@ -492,11 +492,12 @@ def fit_batch(spec_path: str | Path, batch: str, digest: str, data_file: Path,
     todo = [sp for sp in members if sp.id not in results]
     progress.add("fitted", 0, force=True)
     if todo:
-        df = pd.read_parquet(data_file)
+        df = read_parquet_lean(data_file)
         problems = validate_against_data(plan.loaded, todo, {dataset: df})
         if problems:
             raise SpecError(problems)
         cache = SampleCache(df)
+        cache.plan(todo)  # one design per sample for the whole batch
         current = None
         try:
             for sp in todo:
