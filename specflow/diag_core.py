@@ -131,8 +131,8 @@ class Core:
         if self.problem:
             return
         p, L = self.p, self.L
-        A = np.column_stack([y, X, Z])
-        G = A.T @ A
+        blocks = (y[:, None], X, Z)  # the Gram matrix of [y X Z] without stacking n rows again
+        G = np.block([[a.T @ b for b in blocks] for a in blocks])
         if not np.all(np.isfinite(G)):  # a missing or infinite value anywhere reaches G
             self.problem = "the design contains missing or infinite values"
             return
