@@ -113,11 +113,13 @@ def _duplicate_header(path: Path) -> list[str]:
 
 
 def derive_and_filter(loaded: LoadedSpec, name: str, df: pd.DataFrame) -> pd.DataFrame:
-    """Apply a dataset's derived columns (in order) and its sample filter."""
+    """Apply a dataset's derived columns (in order) and its sample filter.
+
+    Works on ``df`` itself (the frame just read; no second copy of a large dataset).
+    """
     from . import expr
 
     ds: Dataset = loaded.spec.data[name]
-    df = df.copy()
     for col, text in ds.derive.items():
         e = expr.parse(text)
         try:
