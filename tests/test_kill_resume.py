@@ -186,8 +186,10 @@ def check_whole(spec: Path, ref: dict) -> None:
         batch = Batch.model_validate_json((out / "fits" / f"{b}.json").read_text(encoding="utf-8"))
         assert [r.spec_id for r in batch.results] == [sp.id for sp in members]
 
-    locks = out / ".snakemake" / "locks"
-    assert not (locks.is_dir() and any(locks.iterdir())), "a Snakemake lock was left behind"
+    for sub in ("locks", "incomplete"):
+        d = out / ".snakemake" / sub
+        left = sorted(p.name for p in d.iterdir()) if d.is_dir() else []
+        assert not left, f"Snakemake's {sub} left behind: {left}"
     record = json.loads((out / "run.json").read_text(encoding="utf-8"))
     assert record["specifications"] == 44 and record["failed"] == 0
     runs = sorted(p for p in (out / "runs").iterdir() if re.fullmatch(r"\d{4}", p.name))
@@ -214,6 +216,9 @@ def resume(spec: Path, ref: dict, what: str) -> None:
     assert proc.returncode == 0, f"{what}: rerun exit {proc.returncode}\n{proc.stdout}{proc.stderr}"
     assert "Traceback" not in proc.stdout + proc.stderr
     check_whole(spec, ref)
+    again = run_to_end(spec)  # healed: the shortcut applies again
+    assert again.returncode == 0 and again.stdout.startswith("nothing to do: 44 specifications"), (
+        f"{what}: {again.stdout}{again.stderr}")
 
 
 def test_kill_at_random_moments_then_resume(reference, tmp_path):
@@ -270,21 +275,27 @@ def test_kill_while_collating(reference, tmp_path):
     resume(spec, reference, "killed in collate")
 
 
-def test_kill_a_forced_rerun_over_finished_outputs(reference, tmp_path):
-    """A finished study rerun with --force (every job redone over existing outputs), killed
-    while the fit jobs run; a plain rerun completes it."""
+def test_kill_forced_reruns_over_finished_outputs(reference, tmp_path):
+    """A finished study rerun with --force (every job redone over existing outputs): killed
+    once Snakemake has removed the old prepared data (prepare running), then again once it
+    has removed the old batch files (fits running). Snakemake rebuilds a missing file only
+    when something asks for it, so a plain rerun must still redo both."""
     spec = make_study(tmp_path / "s")
     out = out_dir(spec)
     shutil.copytree(out_dir(reference["spec"]), out, symlinks=True)
     shutil.rmtree(out / "logs" / "progress")  # so that a progress file means a fit job started
-    proc = start(spec, tmp_path / "run.log", "--force")
-    try:
-        assert wait_for(lambda: any((out / "logs" / "progress").glob("*.json")), proc)
-        running = proc.poll() is None
-    finally:
-        kill_group(proc)
-    assert running
-    resume(spec, reference, "killed forced rerun")
+    steps = [lambda: not (out / "data" / "farms.parquet").exists(),
+             lambda: any((out / "logs" / "progress").glob("*.json"))]
+    for k, step in enumerate(steps):
+        proc = start(spec, tmp_path / f"run{k}.log", "--force")
+        try:
+            assert wait_for(step, proc)
+            running = proc.poll() is None
+        finally:
+            kill_group(proc)
+        assert running
+    assert len(list((out / "fits").glob("*.json"))) < 2  # a batch file is missing
+    resume(spec, reference, "killed forced reruns")
 
 
 def test_killed_between_the_run_record_and_the_snapshot(reference, tmp_path):
