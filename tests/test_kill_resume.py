@@ -299,10 +299,11 @@ def test_kill_forced_reruns_over_finished_outputs(reference, tmp_path):
 
 
 def test_killed_between_the_run_record_and_the_snapshot(reference, tmp_path):
-    """What a kill between the two writes of run.json leaves (specflow.run._record): the
-    record without the state the "nothing to do" shortcut compares, and no snapshot. The
-    window is milliseconds wide, so it is made here rather than hit: the rerun must ask
-    Snakemake, find nothing to do, keep the snapshot and complete the record."""
+    """What a kill while the snapshot is written leaves (specflow.run._record): the record
+    without the state the "nothing to do" shortcut compares, the snapshot's temporary folder,
+    and the dead run's pid in the lock file. The window is milliseconds wide, so it is made
+    here rather than hit: the rerun must say so, remove the folder, ask Snakemake, find
+    nothing to do, keep the snapshot and complete the record."""
     spec = make_study(tmp_path / "s")
     out = out_dir(spec)
     shutil.copytree(out_dir(reference["spec"]), out, symlinks=True)
@@ -310,10 +311,19 @@ def test_killed_between_the_run_record_and_the_snapshot(reference, tmp_path):
     record["state"] = None
     (out / "run.json").write_text(json.dumps(record), encoding="utf-8")
     shutil.rmtree(out / "runs")
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True, check=True)
+    pid = int(dead.stdout)  # a process that has ended
+    (out / "runs" / f".tmp-{pid}-0123abcd").mkdir(parents=True)
+    (out / "runs" / f".tmp-{pid}-0123abcd" / "estimates.csv").write_bytes(b"spec_id,sta")
+    (out / "logs" / "run.pid").write_text(f"{pid}\n", encoding="ascii")
 
     proc = run_to_end(spec)
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert proc.stdout.startswith("nothing to do (Snakemake): 44 specifications up to date")
+    assert proc.stdout.splitlines()[:2] == [
+        f"note: the last run (pid {pid}) was interrupted; removed 1 half-written file(s); "
+        "finished jobs are kept, the rest run again",
+        "nothing to do (Snakemake): 44 specifications up to date; outputs in " + str(out)]
     check_whole(spec, reference)
     assert json.loads((out / "run.json").read_text(encoding="utf-8"))["state"]
     again = run_to_end(spec)
