@@ -552,7 +552,7 @@ class _Cov:
         return self.clip(v)
 
     def clip(self, v: np.ndarray) -> np.ndarray:
-        """Two-way cluster covariance: clip negative eigenvalues, recording a warning once."""
+        """Two-way cluster covariance: clip negative eigenvalues, noting a warning once."""
         if self.clusters is not None and self.clusters.ndim == 2:
             v, clipped = psd_clip(v)
             if clipped and CLIP_WARNING not in self.warnings:
