@@ -31,6 +31,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from helpers import demo_out_dir as out_dir, run_command as command, run_to_end
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMO = ROOT / "specs" / "canal_yields.toml"
@@ -51,17 +52,10 @@ def make_study(root: Path) -> Path:
     return spec
 
 
-def out_dir(spec: Path) -> Path:
-    return spec.parent.parent / "results" / "canal_yields"
 
 
-def command(spec: Path, *args: str) -> list[str]:
-    return [sys.executable, "-m", "specflow.cli", "run", str(spec), "--cores", "2", *args]
 
 
-def run_to_end(spec: Path, *args: str) -> subprocess.CompletedProcess:
-    return subprocess.run(command(spec, *args), capture_output=True, text=True, timeout=300,
-                          stdin=subprocess.DEVNULL)
 
 
 class Background:

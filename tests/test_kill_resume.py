@@ -35,6 +35,7 @@ from pathlib import Path
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
+from helpers import batch_results, demo_out_dir as out_dir, run_command as command, run_to_end
 
 from specflow import workflow as sf
 from specflow.results import Batch
@@ -60,16 +61,10 @@ def make_study(root: Path) -> Path:
     return spec
 
 
-def out_dir(spec: Path) -> Path:
-    return spec.parent.parent / "results" / "canal_yields"
 
 
-def command(spec: Path, *args: str) -> list[str]:
-    return [sys.executable, "-m", "specflow.cli", "run", str(spec), "--cores", "2", *args]
 
 
-def run_to_end(spec: Path, *args: str) -> subprocess.CompletedProcess:
-    return subprocess.run(command(spec, *args), capture_output=True, text=True, timeout=300)
 
 
 def start(spec: Path, log: Path, *args: str) -> subprocess.Popen:
@@ -144,14 +139,6 @@ def exhibits(out: Path) -> dict[str, bytes]:
     return files
 
 
-def batch_results(out: Path) -> dict[str, dict]:
-    got = {}
-    for p in sorted((out / "fits").glob("*.json")):
-        for r in Batch.model_validate_json(p.read_text(encoding="utf-8")).results:
-            d = r.model_dump(mode="json")
-            d.pop("timing")  # per-spec timing differs from run to run
-            got[r.spec_id] = d
-    return got
 
 
 def check_whole(spec: Path, ref: dict) -> None:

@@ -31,6 +31,7 @@ from pathlib import Path
 
 import pytest
 import yaml
+from helpers import batch_results as results
 
 ROOT = Path(__file__).resolve().parents[1]
 SLURM_CONF = Path("/etc/slurm/slurm.conf")
@@ -225,16 +226,6 @@ def copy_demo(target: Path) -> Path:
     return spec
 
 
-def results(out: Path) -> dict[str, dict]:
-    from specflow.results import Batch
-
-    got = {}
-    for p in sorted((out / "fits").glob("*.json")):
-        for r in Batch.model_validate_json(p.read_text()).results:
-            d = r.model_dump(mode="json")
-            d.pop("timing")
-            got[r.spec_id] = d
-    return got
 
 
 def same(a, b, path="") -> None:

@@ -23,6 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from helpers import batch_results
 
 import specflow.diagnostics
 from specflow import workflow as sf
@@ -83,14 +84,6 @@ def approx_equal(a, b, path="") -> None:
         assert a == b, f"{path}: {a!r} != {b!r}"
 
 
-def batch_results(out: Path) -> dict[str, dict]:
-    got = {}
-    for p in sorted((out / "fits").glob("*.json")):
-        for r in Batch.model_validate_json(p.read_text()).results:
-            d = r.model_dump(mode="json")
-            d.pop("timing")
-            got[r.spec_id] = d
-    return got
 
 
 def direct_fits(spec: Path) -> dict[str, dict]:
